@@ -1,0 +1,1 @@
+"""Analysis of curves and spectra produced by the engines."""

@@ -1,0 +1,1 @@
+"""Engines: plain functions over the LinearOperator protocol (no files, no scenarios)."""

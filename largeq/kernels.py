@@ -1,0 +1,210 @@
+"""Compiled (numba) kernels for Pauli-sum operators on two-level bases.
+
+The work is split by where a term acts (see ``largeq.basis`` for the block layout):
+
+* diagonal terms on low sites -> a table over the low part; on high sites -> a table over
+  the high part;
+* off-diagonal groups on low sites only -> a small sparse matrix over the low part, applied
+  inside each block (the block of the input vector stays in cache);
+* off-diagonal groups on high sites only -> whole contiguous blocks are combined
+  (``y[block(hi)] += c * x[block(hi ^ x_mask)]``, a streaming axpy);
+* the few terms that straddle the cut (diagonal or not) -> their value depends on a handful
+  of sign bits on each side: the low side's pattern and the source rank are tabulated per
+  low state, the high side's pattern once per block, and the value is read from a small
+  table indexed by the two patterns.
+
+All per-low-state tables are indexed by the *position* of the low part in ``lo_list``, so
+the loop over a block reads every table sequentially.  Every output block is written by
+exactly one iteration of the outer loop, so it runs in parallel without atomics.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from numba import njit, prange
+
+_CHUNKS = 256  # work units of the parallel loop (each holds its own small scratch arrays)
+
+__all__ = ["fused_kernel", "expect_kernel", "coo_kernel", "popcount", "zsign"]
+
+
+@njit(inline="always", cache=True)
+def popcount(v):
+    v = v - ((v >> 1) & 0x5555555555555555)
+    v = (v & 0x3333333333333333) + ((v >> 2) & 0x3333333333333333)
+    v = (v + (v >> 4)) & 0x0F0F0F0F0F0F0F0F
+    return ((v * 0x0101010101010101) >> 56) & 0xFF
+
+
+@njit(inline="always", cache=True)
+def zsign(z, b):
+    """(-1)^{popcount(z & ~b)}: +1 or -1."""
+    return 1 - 2 * (popcount(z & ~b) & 1)
+
+
+@njit(inline="always", cache=True)
+def _pattern(zmasks, q0, q1, state):
+    """Bit q set when string q (z mask zmasks[q0 + q]) gives sign -1 on ``state``."""
+    p = 0
+    for q in range(q0, q1):
+        p |= (popcount(zmasks[q] & ~state) & 1) << (q - q0)
+    return p
+
+
+@njit(inline="always", cache=True)
+def _block_setup(hi, sector, offset, lo_up, cd_zhi, cd_ptr, cd_vptr, g_xh, g_zhi, g_ptr, g_vptr, cd_base, g_so, g_d, g_base):
+    n_cd = cd_ptr.shape[0] - 1
+    for c in range(n_cd):
+        q0 = cd_ptr[c]
+        q1 = cd_ptr[c + 1]
+        cd_base[c] = cd_vptr[c] + (_pattern(cd_zhi, q0, q1, hi) << (q1 - q0))
+    n_g = g_xh.shape[0]
+    for g in range(n_g):
+        shi = hi ^ g_xh[g]
+        so = offset[shi]
+        g_so[g] = so
+        if so < 0:
+            continue
+        g_d[g] = lo_up[shi] - lo_up[hi]
+        q0 = g_ptr[g]
+        q1 = g_ptr[g + 1]
+        g_base[g] = g_vptr[g] + (_pattern(g_zhi, q0, q1, shi) << (q1 - q0))
+
+
+@njit(parallel=True, cache=True)
+def fused_kernel(sector, offset, lo_up, lo_start,
+                 diag_lo, diag_hi, cd_zhi, cd_ptr, cd_vptr, cd_pat, cd_val,
+                 lo_ptr, lo_col, lo_val,
+                 hi_ptr, hi_src, hi_val,
+                 g_xh, g_zhi, g_ptr, g_vptr, g_pat, g_rank, g_dpop, g_val,
+                 x, y, alpha, beta, gamma):
+    """y <- alpha * (A x) + beta * x + gamma * y  (x and y distinct, same basis)."""
+    n_hi_states = offset.shape[0]
+    n_cd = cd_ptr.shape[0] - 1
+    n_g = g_xh.shape[0]
+    n_chunks = min(n_hi_states, _CHUNKS)
+    for ch in prange(n_chunks):
+        cd_base = np.empty(n_cd, np.int64)
+        g_so = np.empty(n_g, np.int64)
+        g_d = np.empty(n_g, np.int64)
+        g_base = np.empty(n_g, np.int64)
+        for hi in range(ch * n_hi_states // n_chunks, (ch + 1) * n_hi_states // n_chunks):
+            off = offset[hi]
+            if off < 0:
+                continue
+            _block_setup(hi, sector, offset, lo_up, cd_zhi, cd_ptr, cd_vptr, g_xh, g_zhi, g_ptr, g_vptr,
+                         cd_base, g_so, g_d, g_base)
+            n = lo_up[hi]
+            s0 = lo_start[n]
+            size = lo_start[n + 1] - s0
+            dh = diag_hi[hi]
+            for k in range(size):
+                pos = s0 + k
+                d = dh + diag_lo[pos]
+                for c in range(n_cd):
+                    d += cd_val[cd_base[c] + cd_pat[c, pos]]
+                acc = d * x[off + k]
+                for e in range(lo_ptr[pos], lo_ptr[pos + 1]):
+                    acc += lo_val[e] * x[off + lo_col[e]]
+                for g in range(n_g):
+                    so = g_so[g]
+                    if so < 0:
+                        continue
+                    if sector and g_dpop[g, pos] != g_d[g]:
+                        continue
+                    acc += g_val[g_base[g] + g_pat[g, pos]] * x[so + g_rank[g, pos]]
+                if gamma == 0:
+                    y[off + k] = beta * x[off + k] + alpha * acc
+                else:
+                    y[off + k] = gamma * y[off + k] + beta * x[off + k] + alpha * acc
+            for e in range(hi_ptr[hi], hi_ptr[hi + 1]):
+                so = offset[hi_src[e]]
+                c = alpha * hi_val[e]
+                for k in range(size):
+                    y[off + k] += c * x[so + k]
+
+
+@njit(parallel=True, cache=True)
+def expect_kernel(sector, offset, lo_up, lo_start,
+                  diag_lo, diag_hi, cd_zhi, cd_ptr, cd_vptr, cd_pat, cd_val,
+                  lo_ptr, lo_col, lo_val,
+                  hi_ptr, hi_src, hi_val,
+                  g_xh, g_zhi, g_ptr, g_vptr, g_pat, g_rank, g_dpop, g_val,
+                  x, partial):
+    """partial[hi] <- sum over block hi of conj(x_b) (A x)_b; the caller sums ``partial``."""
+    n_hi_states = offset.shape[0]
+    n_cd = cd_ptr.shape[0] - 1
+    n_g = g_xh.shape[0]
+    n_chunks = min(n_hi_states, _CHUNKS)
+    for ch in prange(n_chunks):
+        cd_base = np.empty(n_cd, np.int64)
+        g_so = np.empty(n_g, np.int64)
+        g_d = np.empty(n_g, np.int64)
+        g_base = np.empty(n_g, np.int64)
+        for hi in range(ch * n_hi_states // n_chunks, (ch + 1) * n_hi_states // n_chunks):
+            off = offset[hi]
+            if off < 0:
+                continue
+            _block_setup(hi, sector, offset, lo_up, cd_zhi, cd_ptr, cd_vptr, g_xh, g_zhi, g_ptr, g_vptr,
+                         cd_base, g_so, g_d, g_base)
+            n = lo_up[hi]
+            s0 = lo_start[n]
+            size = lo_start[n + 1] - s0
+            dh = diag_hi[hi]
+            tot = 0j
+            for k in range(size):
+                pos = s0 + k
+                d = dh + diag_lo[pos]
+                for c in range(n_cd):
+                    d += cd_val[cd_base[c] + cd_pat[c, pos]]
+                acc = d * x[off + k]
+                for e in range(lo_ptr[pos], lo_ptr[pos + 1]):
+                    acc += lo_val[e] * x[off + lo_col[e]]
+                for g in range(n_g):
+                    so = g_so[g]
+                    if so < 0:
+                        continue
+                    if sector and g_dpop[g, pos] != g_d[g]:
+                        continue
+                    acc += g_val[g_base[g] + g_pat[g, pos]] * x[so + g_rank[g, pos]]
+                tot += np.conj(x[off + k]) * acc
+            for e in range(hi_ptr[hi], hi_ptr[hi + 1]):
+                so = offset[hi_src[e]]
+                s = 0j
+                for k in range(size):
+                    s += np.conj(x[off + k]) * x[so + k]
+                tot += hi_val[e] * s
+            partial[hi] = tot
+
+
+@njit(cache=True)
+def coo_kernel(n_lo, sector, up_spins, offset, lo_rank, states, gx, gptr, gz, gc, count_only, rows, cols, vals):
+    """Matrix elements A[i, j] of a Pauli sum grouped by x_mask (generic per-state gather).
+
+    This is the plain reference path (one rank lookup per state and group) used to assemble
+    CSR matrices; it shares no tables with the fast kernels above.  With ``count_only`` the
+    number of non-zeros is returned and nothing is written.
+    """
+    mask = (1 << n_lo) - 1
+    nnz = 0
+    for i in range(states.shape[0]):
+        b = states[i]
+        for g in range(gx.shape[0]):
+            src = b ^ gx[g]
+            if sector and popcount(src) != up_spins:
+                continue
+            so = offset[src >> n_lo]
+            if so < 0:
+                continue
+            q0 = gptr[g]
+            c = gc[q0] * zsign(gz[q0], src)
+            for q in range(q0 + 1, gptr[g + 1]):
+                c += gc[q] * zsign(gz[q], src)
+            if c == 0:
+                continue
+            if not count_only:
+                rows[nnz] = i
+                cols[nnz] = so + lo_rank[src & mask]
+                vals[nnz] = c
+            nnz += 1
+    return nnz

@@ -1,0 +1,1 @@
+"""Run folders: HDF5 results, JSON summaries, checkpoints, plots and HTML reports."""
