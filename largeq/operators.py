@@ -13,6 +13,7 @@ import scipy.sparse as sp
 from scipy.sparse.linalg import LinearOperator
 
 from . import kernels
+from .vectors import threads_for
 from .basis import Basis
 from .pauli import PauliSum
 
@@ -229,7 +230,8 @@ class PauliOperator(LinearOperator):
             if np.iscomplexobj(s) and not np.iscomplexobj(y) and np.imag(s) != 0:
                 raise TypeError(f"fused_update: complex {name} needs a complex output vector")
             scal.append(t(np.real(s)) if not np.iscomplexobj(y) else t(s))
-        kernels.fused_kernel(*self._args(), x, y, *scal)
+        with threads_for(self.shape[0]):
+            kernels.fused_kernel(*self._args(), x, y, *scal)
         return y
 
     def _matvec(self, x):
@@ -254,7 +256,8 @@ class PauliOperator(LinearOperator):
         if x.dtype != need:
             x = x.astype(need)
         partial = np.zeros(self.basis.block_offset.shape[0], dtype=np.complex128)
-        kernels.expect_kernel(*self._args(), x, partial)
+        with threads_for(self.shape[0]):
+            kernels.expect_kernel(*self._args(), x, partial)
         val = complex(partial.sum())
         return val.real if self.hermitian else val
 

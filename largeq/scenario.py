@@ -95,6 +95,19 @@ class ScenarioError(ValueError):
             msg += f" (in {source})"
         super().__init__(msg)
 
+    def __reduce__(self):  # keep the error picklable (e.g. across worker processes)
+        return (type(self), (self.path, self.value, self.allowed, self.source))
+
+
+class _Missing:
+    """Marker for a required key that is absent (shown as such in error messages)."""
+
+    def __repr__(self) -> str:
+        return "nothing (the key is missing)"
+
+
+MISSING = _Missing()
+
 
 def _show(value: Any, limit: int = 80) -> str:
     try:
@@ -551,11 +564,11 @@ def parse_scenario(data: Any, *, source: str = "<dict>") -> Scenario:
 
     # ---- chain
     if "chain" not in data:
-        ctx.fail("chain", None, "a [chain] table with 'sites' (and optionally 'boundary')")
+        ctx.fail("chain", MISSING, "a [chain] table with 'sites' (and optionally 'boundary')")
     chain_t = ctx.table(data["chain"], "chain")
     ctx.keys(chain_t, "chain", ("sites", "boundary"))
     if "sites" not in chain_t:
-        ctx.fail("chain.sites", None, f"an integer between {MIN_SITES} and {MAX_SITES} (required)")
+        ctx.fail("chain.sites", MISSING, f"an integer between {MIN_SITES} and {MAX_SITES} (required)")
     L = ctx.integer(chain_t["sites"], "chain.sites", MIN_SITES, MAX_SITES)
     boundary = ctx.choice(chain_t.get("boundary", "periodic"), "chain.boundary", BOUNDARIES)
     chain = Chain(L, boundary)
@@ -574,7 +587,7 @@ def parse_scenario(data: Any, *, source: str = "<dict>") -> Scenario:
                          "no explicit couplings, bonds or fields together with [model] preset "
                          "(a preset defines the whole Hamiltonian; write it out explicitly instead)")
         if "preset" not in model_t:
-            ctx.fail("model.preset", None, "one of " + ", ".join(repr(p) for p in PRESETS))
+            ctx.fail("model.preset", MISSING, "one of " + ", ".join(repr(p) for p in PRESETS))
         name = ctx.choice(model_t["preset"], "model.preset", PRESETS)
         spec = PRESET_PARAMS[name]
         ctx.keys(model_t, "model", ("preset",) + tuple(spec))
@@ -589,7 +602,7 @@ def parse_scenario(data: Any, *, source: str = "<dict>") -> Scenario:
             elif key in model_t:
                 params[key] = ctx.number(model_t[key], path, nonneg=(key == "w"), bound=MAX_STRENGTH)
             elif default is None:
-                ctx.fail(path, None, f"a number between 0 and {MAX_STRENGTH:g} (required for this preset)")
+                ctx.fail(path, MISSING, f"a number between 0 and {MAX_STRENGTH:g} (required for this preset)")
             else:
                 params[key] = float(default)
         model = ModelPreset(name, tuple(sorted(params.items())))
@@ -609,7 +622,7 @@ def parse_scenario(data: Any, *, source: str = "<dict>") -> Scenario:
                 t = ctx.table(item, p)
                 ctx.keys(t, p, ("range",) + _COUPLING_KEYS)
                 if "range" not in t:
-                    ctx.fail(f"{p}.range", None, "an integer >= 1 (required)")
+                    ctx.fail(f"{p}.range", MISSING, "an integer >= 1 (required)")
                 r = ctx.integer(t["range"], f"{p}.range", 1)
                 hi = L // 2 if periodic else L - 1
                 if r > hi:
@@ -625,7 +638,7 @@ def parse_scenario(data: Any, *, source: str = "<dict>") -> Scenario:
                 t = ctx.table(item, p)
                 ctx.keys(t, p, ("sites",) + _COUPLING_KEYS)
                 if "sites" not in t:
-                    ctx.fail(f"{p}.sites", None, "a list of two different sites (required)")
+                    ctx.fail(f"{p}.sites", MISSING, "a list of two different sites (required)")
                 pair = ctx.site_pair(t["sites"], f"{p}.sites", L)
                 x, y, z, style = _coupling_values(ctx, t, p)
                 bonds.append(Bond(pair, x, y, z, style))
@@ -636,7 +649,7 @@ def parse_scenario(data: Any, *, source: str = "<dict>") -> Scenario:
                 if axis in ft:
                     fields.append(_parse_field(ctx, ft[axis], f"field.{axis}", axis, chain))
         if not couplings and not bonds and not fields:
-            ctx.fail("coupling", None, "a [model] preset or at least one [[coupling]], [[bond]] or [field.*]")
+            ctx.fail("coupling", MISSING, "a [model] preset or at least one [[coupling]], [[bond]] or [field.*]")
 
     # empty Hamiltonian check (all strengths zero)
     nonzero = any(c.x or c.y or c.z for c in couplings) or any(b.x or b.y or b.z for b in bonds) \
@@ -647,12 +660,12 @@ def parse_scenario(data: Any, *, source: str = "<dict>") -> Scenario:
 
     # ---- start
     if "start" not in data:
-        ctx.fail("start", None, "a [start] table with 'state'")
+        ctx.fail("start", MISSING, "a [start] table with 'state'")
     start = _parse_start(ctx, ctx.table(data["start"], "start"), chain)
 
     # ---- observables
     if "observe" not in data:
-        ctx.fail("observe", None, "at least one [[observe]] table")
+        ctx.fail("observe", MISSING, "at least one [[observe]] table")
     obs_list = data["observe"]
     if not isinstance(obs_list, list) or not obs_list:
         ctx.fail("observe", obs_list, "a non-empty array of tables [[observe]]")
@@ -671,7 +684,7 @@ def parse_scenario(data: Any, *, source: str = "<dict>") -> Scenario:
 
     # ---- time
     if "time" not in data:
-        ctx.fail("time", None, "a [time] table with t_max and points or step")
+        ctx.fail("time", MISSING, "a [time] table with t_max and points or step")
     time = _parse_time(ctx, ctx.table(data["time"], "time"))
 
     # ---- sector
@@ -681,7 +694,8 @@ def parse_scenario(data: Any, *, source: str = "<dict>") -> Scenario:
         ctx.keys(st, "sector", ("up_spins",))
         up = st.get("up_spins", "auto")
         if isinstance(up, str):
-            ctx.choice(up, "sector.up_spins", ("auto",))
+            if up != "auto":
+                ctx.fail("sector.up_spins", up, f"'auto' or an integer between 0 and {L}")
         else:
             up = ctx.integer(up, "sector.up_spins", 0, L)
             breakers = _magnetization_breakers(couplings, bonds, fields, L)
@@ -760,13 +774,13 @@ def _parse_field(ctx: _Ctx, value: Any, p: str, axis: str, chain: Chain) -> Fiel
             if bad in t:
                 ctx.fail(f"{p}.{bad}", t[bad], "no 'strength' or 'seed' with pattern 'values'")
         if "values" not in t:
-            ctx.fail(f"{p}.values", None, f"a list of {L} numbers (required for pattern 'values')")
+            ctx.fail(f"{p}.values", MISSING, f"a list of {L} numbers (required for pattern 'values')")
         vals = ctx.number_list(t["values"], f"{p}.values", L, "for pattern 'values'", bound=MAX_STRENGTH)
         return Field(axis, pattern, 0.0, None, vals)
     if "values" in t:
         ctx.fail(f"{p}.values", t["values"], "'values' only with pattern = 'values'")
     if "strength" not in t:
-        ctx.fail(f"{p}.strength", None, "a finite number (required)")
+        ctx.fail(f"{p}.strength", MISSING, "a finite number (required)")
     strength = ctx.number(t["strength"], f"{p}.strength", nonneg=(pattern == "random"), bound=MAX_STRENGTH)
     seed = None
     if pattern == "random":
@@ -782,7 +796,7 @@ def _parse_start(ctx: _Ctx, t: dict, chain: Chain) -> Start:
     L = chain.sites
     ctx.keys(t, "start", ("state", "bits", "theta", "phi"))
     if "state" not in t:
-        ctx.fail("start.state", None, "one of " + ", ".join(repr(s) for s in START_STATES))
+        ctx.fail("start.state", MISSING, "one of " + ", ".join(repr(s) for s in START_STATES))
     state = ctx.choice(t["state"], "start.state", START_STATES)
     extra = {"neel": (), "domain_wall": (), "bits": ("bits",), "tilted": ("theta", "phi")}[state]
     for k in ("bits", "theta", "phi"):
@@ -798,7 +812,7 @@ def _parse_start(ctx: _Ctx, t: dict, chain: Chain) -> Start:
             ctx.fail("start.bits", bits, f"a string of exactly {L} characters '0'/'1' (character j = site j, '1' = up)")
         return Start(state, bits=bits)
     if "theta" not in t:
-        ctx.fail("start.theta", None, "a polar angle in radians, or a list of one per site (required)")
+        ctx.fail("start.theta", MISSING, "a polar angle in radians, or a list of one per site (required)")
     angles = []
     for k in ("theta", "phi"):
         v = t.get(k, 0.0)
@@ -813,12 +827,12 @@ def _parse_observable(ctx: _Ctx, item: Any, p: str, chain: Chain, bond_pairs: di
     L = chain.sites
     t = ctx.table(item, p)
     if "name" not in t:
-        ctx.fail(f"{p}.name", None, "a name made of letters, digits and '_' (required)")
+        ctx.fail(f"{p}.name", MISSING, "a name made of letters, digits and '_' (required)")
     name = t["name"]
     if not isinstance(name, str) or not _NAME_RE.fullmatch(name):
         ctx.fail(f"{p}.name", name, "a non-empty name made of letters, digits and '_'")
     if "kind" not in t:
-        ctx.fail(f"{p}.kind", None, "one of " + ", ".join(repr(k) for k in OBSERVABLE_KINDS))
+        ctx.fail(f"{p}.kind", MISSING, "one of " + ", ".join(repr(k) for k in OBSERVABLE_KINDS))
     kind = ctx.choice(t["kind"], f"{p}.kind", OBSERVABLE_KINDS)
     per_kind = {"site": ("axis", "site"), "sum": ("axis", "signs", "normalize"),
                 "zz": ("site", "distance"), "bond": ("sites",)}[kind]
@@ -826,7 +840,7 @@ def _parse_observable(ctx: _Ctx, item: Any, p: str, chain: Chain, bond_pairs: di
     if kind == "site":
         axis = ctx.choice(t.get("axis", "z"), f"{p}.axis", OBS_AXES)
         if "site" not in t:
-            ctx.fail(f"{p}.site", None, f"an integer between 0 and {L - 1} (required)")
+            ctx.fail(f"{p}.site", MISSING, f"an integer between 0 and {L - 1} (required)")
         site = ctx.integer(t["site"], f"{p}.site", 0, L - 1)
         return ObservableSpec(name, kind, axis=axis, site=site)
     if kind == "sum":
@@ -854,7 +868,7 @@ def _parse_observable(ctx: _Ctx, item: Any, p: str, chain: Chain, bond_pairs: di
         return ObservableSpec(name, kind, site=site, distance=r)
     # bond
     if "sites" not in t:
-        ctx.fail(f"{p}.sites", None, "a list of two sites joined by a Hamiltonian bond (required)")
+        ctx.fail(f"{p}.sites", MISSING, "a list of two sites joined by a Hamiltonian bond (required)")
     pair = ctx.site_pair(t["sites"], f"{p}.sites", L)
     key = (min(pair), max(pair))
     if not bond_pairs.get(key, False):
@@ -865,7 +879,7 @@ def _parse_observable(ctx: _Ctx, item: Any, p: str, chain: Chain, bond_pairs: di
 def _parse_time(ctx: _Ctx, t: dict) -> TimeGrid:
     ctx.keys(t, "time", ("t_max", "points", "step"))
     if "t_max" not in t:
-        ctx.fail("time.t_max", None, "a finite number > 0 (required)")
+        ctx.fail("time.t_max", MISSING, "a finite number > 0 (required)")
     t_max = ctx.number(t["t_max"], "time.t_max", positive=True, hi=MAX_TIME)
     has_p, has_s = "points" in t, "step" in t
     if has_p == has_s:

@@ -129,7 +129,8 @@ MODELS = {
     "xxz_j1j2_L8": lambda: xxz_j1j2_ring(8, 1.0, 0.3, 0.8, 1.3),
     # Bañuls, Cirac & Hastings, PRL 106, 050405 (2011): J = 1, g = -1.05, h = 0.5 (Pauli units)
     "mixed_ising_L9": lambda: mixed_field_ising(9, 1.0, -1.05, 0.5, periodic=True),
-    "mixed_ising_open_L10": lambda: mixed_field_ising(10, 1.0, 0.9045, 0.809, periodic=False),
+    # Kim & Huse, PRL 111, 127205 (2013): J = 1, g = 0.9045 (transverse), h = 0.809 (longitudinal)
+    "mixed_ising_open_L8": lambda: mixed_field_ising(8, 1.0, 0.9045, 0.809, periodic=False),
 }
 
 

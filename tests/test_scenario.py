@@ -123,11 +123,11 @@ BAD = [
     ("unknown preset", preset_base, [(("model", "preset"), "j1j3_ring")], "model.preset", "'j1j3_ring'"),
     ("unknown preset param", preset_base, [(("model", "delta"), 1.0)], "model.delta", "'delta'"),
     ("preset param nan", preset_base, [(("model", "j2"), math.nan)], "model.j2", "nan"),
-    ("random preset without w", preset_base, [(("model",), {"preset": "random_field_heisenberg"})], "model.w", "None"),
+    ("random preset without w", preset_base, [(("model",), {"preset": "random_field_heisenberg"})], "model.w", "missing"),
     ("empty hamiltonian", base,
      [(("coupling",), [{"range": 1, "xy": 0.0, "zz": 0.0}]), (("field", "z", "strength"), 0.0)],
      "coupling", "all couplings and fields are zero"),
-    ("no terms at all", base, [(("coupling",), DELETE), (("field",), DELETE)], "coupling", "None"),
+    ("no terms at all", base, [(("coupling",), DELETE), (("field",), DELETE)], "coupling", "missing"),
     ("random seed negative", base, [(("field", "z"), {"pattern": "random", "strength": 1.0, "seed": -5})],
      "field.z.seed", "-5"),
     ("random W negative", base, [(("field", "z"), {"pattern": "random", "strength": -1.0})],
@@ -166,6 +166,14 @@ def test_error_message_format_example():
     d["chain"]["sites"] = -4
     with pytest.raises(ScenarioError, match=r"scenario field 'chain.sites': got -4; allowed: an integer between 2 and 62"):
         parse_scenario(d)
+
+
+def test_error_pickles():
+    import pickle
+
+    err = ScenarioError("chain.sites", -4, "an integer between 2 and 62", "x.toml")
+    back = pickle.loads(pickle.dumps(err))
+    assert str(back) == str(err) and back.path == "chain.sites"
 
 
 def test_unknown_key_suggests_close_match():

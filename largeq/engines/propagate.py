@@ -30,7 +30,7 @@ import numpy as np
 from scipy.linalg import eigh_tridiagonal
 from scipy.special import gammaln, jv
 
-from .bounds import SpectralBounds, _axpy, _check_op, spectral_bounds
+from .bounds import SpectralBounds, _axpy, _check_op, _norm, _vdot, spectral_bounds
 from .linalg import fused_update
 
 __all__ = [
@@ -107,19 +107,18 @@ def _log_tail_bound(x: float, n: np.ndarray) -> np.ndarray:
 def _tail_sums(x: float, tol: float) -> tuple[np.ndarray, np.ndarray]:
     """|J_n(x)| for n = 0..M and the tail bounds tail[n] = 2 sum_{k>=n} |J_k(x)|.
 
-    Beyond M the rigorous bound |J_k(x)| <= (x/2)^k / k! is used (it sums to less than
-    2 (x/2)^{M+1}/(M+1)! when M + 2 >= x), with M chosen so that this remainder is below
-    1e-3 tol.
+    Beyond M the rigorous bound |J_k(x)| <= (x/2)^k / k! is used; for k + 1 >= x its terms
+    at least halve, so sum_{k>=m} |J_k| <= 2 (x/2)^m / m!.  M >= x is the smallest integer
+    with 2 * 2 (x/2)^M / M! <= 1e-3 tol, so tail[M] <= 1e-3 tol and an order always exists.
     """
-    # smallest M >= x with 2 * 2 (x/2)^{M+1}/(M+1)! <= 1e-3 tol
     m = int(math.ceil(x)) + 1
     target = math.log(1e-3 * tol / 2.0)
     step = max(8, int(0.1 * x))
-    while _log_tail_bound(x, np.float64(m + 1)) > target:
+    while _log_tail_bound(x, np.float64(m)) > target:
         m += step
     n = np.arange(m + 1)
     absj = np.abs(jv(n, x))
-    rest = 2.0 * math.exp(_log_tail_bound(x, np.float64(m + 1)))
+    rest = math.exp(_log_tail_bound(x, np.float64(m + 1)))  # >= sum_{k>m} |J_k|
     tail = 2.0 * (np.cumsum(absj[::-1])[::-1] + rest)
     return absj, tail
 
@@ -145,9 +144,8 @@ def chebyshev_order(x: float, tol: float = 1e-10) -> tuple[int, float]:
     if x == 0:
         return 1, 0.0
     _, tail = _tail_sums(float(x), float(tol))
-    order = int(np.argmax(tail <= tol))
-    # terms 0..order-1 kept; tail[order] bounds what was dropped (order >= 1 since tail[0] >= 2J_0..)
-    order = max(order, 1)
+    # terms 0..order-1 are kept; tail[order] bounds what is dropped; tail[-1] <= 1e-3 tol
+    order = max(int(np.argmax(tail <= tol)), 1)
     return order, float(tail[order])
 
 
@@ -248,7 +246,7 @@ def _lanczos_step(op, psi, dt, tol, max_krylov, basis, out, orders):
     src = psi
     remaining = float(dt)
     while True:
-        nrm = float(np.linalg.norm(src))
+        nrm = float(_norm(src))
         if len(basis) == 0:
             basis.append(np.empty_like(psi))
         np.multiply(src, 1.0 / nrm, out=basis[0])
@@ -266,9 +264,9 @@ def _lanczos_step(op, psi, dt, tol, max_krylov, basis, out, orders):
             matvecs += 1
             if j > 0:
                 _axpy(-betas[j - 1], basis[j - 1], w)
-            alpha = float(np.vdot(basis[j], w).real)
+            alpha = float(_vdot(basis[j], w).real)
             _axpy(-alpha, basis[j], w)
-            beta = float(np.linalg.norm(w))
+            beta = float(_norm(w))
             alphas.append(alpha)
             scale = max(scale, abs(alpha), beta)
             theta, s = _tridiag_eig(alphas, betas)
@@ -430,7 +428,7 @@ def evolve(op, psi0: np.ndarray, times, *, method: str = "chebyshev",
 
     n_times = times.size
     state = np.array(psi0, dtype=np.complex128, copy=True)
-    norm0 = float(np.linalg.norm(state))
+    norm0 = float(_norm(state))
     if emit_start and on_output is not None:
         on_output(start_index, float(times[start_index]), _readonly(state))
 
@@ -456,7 +454,7 @@ def evolve(op, psi0: np.ndarray, times, *, method: str = "chebyshev",
             errs.append(err)
             steps += 1
             for k in range(len(dts)):
-                nk = float(np.linalg.norm(outs[k]))
+                nk = float(_norm(outs[k]))
                 if abs(nk - norm0) > (2 * tol + 1e-9) * norm0:
                     raise RuntimeError(
                         f"norm drifted from {norm0!r} to {nk!r} at output index {i + 1 + k}: "

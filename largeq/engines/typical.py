@@ -91,14 +91,14 @@ def random_state(
         rng.standard_normal(out=flat)
         if is_complex:
             flat *= np.sqrt(0.5)
-    else:
-        if is_complex:
-            flat = out.view(np.float64)[::2]
-            rng.random(out=flat)  # uniform u in the real slots, then e^{2 pi i u} in place
-            np.exp(2j * np.pi * out.real, out=out)
-        else:
-            rng.random(out=out)
-            np.copysign(1.0, out - 0.5, out=out)
+    else:  # random phases / signs, in chunks so that no full-size temporary is made
+        chunk = 1 << 20
+        for s0 in range(0, dim, chunk):
+            u = rng.random(min(chunk, dim - s0))
+            if is_complex:
+                out[s0 : s0 + u.size] = np.exp(2j * np.pi * u)
+            else:
+                out[s0 : s0 + u.size] = np.where(u < 0.5, -1.0, 1.0)
     if normalize:
         out /= np.linalg.norm(out)
     return out

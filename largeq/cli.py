@@ -1,0 +1,154 @@
+"""Command line: ``largeq <command> ...`` (thin: parse, call the library, save, print)."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from importlib import resources
+from pathlib import Path
+
+from . import __version__
+
+EXAMPLES_PACKAGE = "largeq.examples_data"
+
+
+class UsageError(Exception):
+    """A problem with the command line itself (printed without a traceback)."""
+
+
+def builtin_examples() -> dict[str, Path]:
+    folder = resources.files(EXAMPLES_PACKAGE)
+    return {p.name[:-5]: Path(str(p)) for p in folder.iterdir() if p.name.endswith(".toml")}
+
+
+def resolve_scenario(arg: str, sites: int | None = None):
+    """A scenario from a file path or the name of a built-in example, optionally resized to ``sites``."""
+    from .scenario import load_scenario
+
+    path = Path(arg)
+    if not path.exists():
+        examples = builtin_examples()
+        name = arg[:-5] if arg.endswith(".toml") else arg
+        if name not in examples:
+            raise UsageError(f"scenario {arg!r}: no such file and no built-in example of that name; "
+                             f"built-in examples: {', '.join(sorted(examples))}")
+        path = examples[name]
+    scenario = load_scenario(path)
+    if sites is not None:
+        scenario = scenario.with_length(sites)
+    return scenario
+
+
+# ---------------------------------------------------------------------------- commands
+def cmd_examples(args) -> int:
+    from .scenario import load_scenario
+
+    for name, path in sorted(builtin_examples().items()):
+        s = load_scenario(path)
+        print(f"{name:24s} L = {s.n_sites:<3d} {s.title}")
+    return 0
+
+
+def cmd_describe(args) -> int:
+    from .describe import describe_scenario
+
+    scenario = resolve_scenario(args.scenario, args.sites)
+    info = describe_scenario(scenario)
+    if args.json:
+        print(json.dumps(info["data"], indent=2, default=str))
+    else:
+        print(info["text"])
+    return 0
+
+
+def cmd_relax(args) -> int:
+    from .relax import RelaxOptions, resume_relaxation, run_relaxation
+
+    options = RelaxOptions(checkpoint_seconds=args.checkpoint_every, progress=args.progress, block=args.block)
+    if args.resume:
+        if args.scenario:
+            raise UsageError("relax --resume takes a run folder and no scenario")
+        run = resume_relaxation(args.resume, options)
+    else:
+        if not args.scenario:
+            raise UsageError("relax needs a scenario (a TOML file or a built-in example name) or --resume FOLDER")
+        run = run_relaxation(resolve_scenario(args.scenario, args.sites), args.out, options)
+    _print_relax_summary(run)
+    return 0
+
+
+def _print_relax_summary(run) -> None:
+    s = run.summary
+    print(f"{s['title']}")
+    print(f"  L = {s['sites']}, {s['basis']['kind']} basis, dimension {s['basis']['dimension']:,}; "
+          f"{s['method']} (tolerance {s['tolerance']:g}); {s['matvecs']} products in {s['wall_seconds']:.1f} s")
+    print(f"  initial energy {s['initial_energy']:.6g}; energy drift {s['energy_drift']:.2g}; norm drift {s['norm_drift']:.2g}")
+    for name, o in s["observables"].items():
+        state = "settled" if o["settled"] else "NOT settled"
+        print(f"  {name:18s} equilibrium {o['equilibrium']:+.5f} +- {o['equilibrium_err']:.1e}   "
+              f"sigma^2 {o['temporal_variance']:.2e}   t_relax {o['relaxation_time']:.3g}   ({state})")
+        for key in ("d_eff", "bound"):
+            if key in o:
+                print(f"      {key}: {o[key]}")
+    print(f"  results: {run.folder}/ (results.h5, summary.json, report.html)")
+
+
+def _add_common(p, *, scenario_optional=False):
+    p.add_argument("scenario", nargs="?" if scenario_optional else None,
+                   help="scenario TOML file, or the name of a built-in example (see 'largeq examples')")
+    p.add_argument("--sites", type=int, default=None, metavar="L",
+                   help="run the scenario at another chain length L (patterns are rescaled)")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="largeq",
+        description="Relaxation of isolated spin-1/2 chains after a quench, past the exact-diagonalization wall.",
+    )
+    parser.add_argument("--version", action="version", version=f"largeq {__version__}")
+    sub = parser.add_subparsers(dest="command", required=True)
+
+    p = sub.add_parser("examples", help="list the built-in example scenarios")
+    p.set_defaults(func=cmd_examples)
+
+    p = sub.add_parser("describe", help="print a scenario's model, basis, dimension and memory needs (nothing is run)")
+    _add_common(p)
+    p.add_argument("--json", action="store_true", help="print the summary as JSON")
+    p.set_defaults(func=cmd_describe)
+
+    p = sub.add_parser("relax", help="main job: relaxation curves, equilibrium values, fluctuations, saved as a run folder")
+    _add_common(p, scenario_optional=True)
+    p.add_argument("--out", default=None, metavar="FOLDER", help="run folder (default: runs/relax-<timestamp>)")
+    p.add_argument("--resume", default=None, metavar="FOLDER", help="continue an interrupted run from its checkpoint")
+    p.add_argument("--checkpoint-every", type=float, default=None, metavar="SECONDS",
+                   help="checkpoint interval (default: the scenario's numerics.checkpoint_seconds)")
+    p.add_argument("--block", type=int, default=None, metavar="K",
+                   help="output times sharing one Chebyshev expansion (default: chosen from free memory)")
+    g = p.add_mutually_exclusive_group()
+    g.add_argument("--progress", dest="progress", action="store_true", default=None, help="always show a progress bar")
+    g.add_argument("--no-progress", dest="progress", action="store_false", help="never show a progress bar")
+    p.set_defaults(func=cmd_relax)
+    return parser
+
+
+def main(argv=None) -> int:
+    from .planner import MemoryRefusal
+    from .reports.checkpoint import CheckpointError
+    from .scenario import ScenarioError
+
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        return args.func(args)
+    except (ScenarioError, UsageError, MemoryRefusal, CheckpointError, FileExistsError, FileNotFoundError) as exc:
+        print(f"largeq {args.command}: error: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print(f"largeq {args.command}: interrupted; a run with checkpoints can be continued with --resume",
+              file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,377 @@
+"""The main job: relaxation curves of a scenario, analysed and saved as a run folder.
+
+``run_relaxation`` builds the problem, refuses up front when the forecast memory does not
+fit, evolves the initial state over the time grid (Chebyshev or Lanczos), records every
+observable, the survival probability, the norm and the energy at each output time, writes
+atomic checkpoints, and finally analyses each curve and writes ``results.h5``,
+``summary.json``, the plots and ``report.html``.  ``resume_relaxation`` continues a killed
+run from its last checkpoint and gives the same numbers as an uninterrupted run.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import time
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from . import __version__
+from .analysis.relaxation import analyse_curve
+from .assemble import Problem, build_problem, spin_conventions
+from .engines.bounds import SpectralBounds, spectral_bounds
+from .engines.propagate import evolve
+from .planner import available_bytes, check_fits, evolution_forecast, format_bytes
+from .progress import progress_bar
+from .reports import html, plots
+from .reports.checkpoint import CHECKPOINT_NAME, Checkpointer, load_checkpoint
+from .reports.store import (Quantity, atomic_write_text, make_run_folder, package_versions, run_metadata,
+                            write_results, write_summary)
+from .scenario import Scenario, load_scenario, scenario_to_toml
+from .vectors import vdot
+
+__all__ = ["RelaxOptions", "RelaxRun", "run_relaxation", "resume_relaxation", "choose_block"]
+
+SCENARIO_FILE = "scenario.toml"
+BOUNDS_SEED = 20260101  # fixed seed of the Lanczos start vector: bounds are reproducible
+
+
+@dataclass(frozen=True)
+class RelaxOptions:
+    """Settings of one relaxation run that are not part of the physics scenario.
+
+    Attributes
+    ----------
+    checkpoint_seconds : float or None
+        Interval between checkpoints; None takes the scenario's ``numerics.checkpoint_seconds``.
+    progress : bool or None
+        Progress bar on/off; None: on when stderr is a terminal.
+    block : int or None
+        Output times sharing one Chebyshev expansion; None chooses from the memory available.
+    memory_available : int or None
+        Override of the available memory in bytes (for forecasts on another machine and tests).
+    """
+
+    checkpoint_seconds: float | None = None
+    progress: bool | None = None
+    block: int | None = None
+    memory_available: int | None = None
+
+
+@dataclass(frozen=True)
+class RelaxRun:
+    folder: Path
+    summary: dict
+
+
+def fingerprint(scenario_text: str) -> str:
+    return hashlib.sha256(scenario_text.encode()).hexdigest()[:24]
+
+
+def choose_block(dimension: int, n_sites: int, n_times: int, available: int, method: str) -> int:
+    """Output times per Chebyshev expansion: up to 8, while the run uses at most half the memory.
+
+    Sharing an expansion saves the O(log 1/tol) start-up of each step but holds one
+    accumulator vector per output time (common practice: a handful of outputs per block).
+    """
+    if method != "chebyshev":
+        return 1
+    block = 1
+    for k in (8, 4, 2):
+        if k < n_times and evolution_forecast(dimension, n_sites, block=k).total_bytes <= 0.5 * available:
+            block = k
+            break
+    return block
+
+
+class _Recorder:
+    """Observables, survival probability, norm and energy at every output time."""
+
+    def __init__(self, problem: Problem, psi_start: np.ndarray, n_times: int):
+        self.problem = problem
+        self.psi_start = psi_start
+        self.names = list(problem.observables)
+        self.ops = {n: problem.observable_operator(n) for n in self.names}
+        self.values = {n: np.full(n_times, np.nan) for n in self.names}
+        self.survival = np.full(n_times, np.nan)
+        self.norm = np.full(n_times, np.nan)
+        self.energy = np.full(n_times, np.nan)
+
+    def record(self, i: int, psi: np.ndarray) -> None:
+        nrm2 = vdot(psi, psi).real
+        self.norm[i] = np.sqrt(nrm2)
+        self.survival[i] = abs(vdot(self.psi_start, psi)) ** 2
+        self.energy[i] = self.problem.operator.expectation(psi) / nrm2
+        for n in self.names:
+            self.values[n][i] = self.ops[n].expectation(psi) / nrm2
+
+    def arrays(self) -> dict[str, np.ndarray]:
+        out = {f"obs:{n}": v for n, v in self.values.items()}
+        out.update(survival=self.survival, norm=self.norm, energy=self.energy)
+        return out
+
+    def restore(self, state: dict) -> None:
+        for n in self.names:
+            self.values[n][:] = state[f"obs:{n}"]
+        self.survival[:] = state["survival"]
+        self.norm[:] = state["norm"]
+        self.energy[:] = state["energy"]
+
+
+def _prepare(scenario: Scenario, folder: Path, options: RelaxOptions):
+    problem = build_problem(scenario)
+    basis = problem.basis
+    method = scenario.numerics.method
+    times = scenario.time.times()
+    avail = available_bytes() if options.memory_available is None else int(options.memory_available)
+    block = options.block or choose_block(basis.dim, basis.n_sites, len(times), avail, method)
+    forecast = evolution_forecast(basis.dim, basis.n_sites, method=method, block=block)
+    check_fits(forecast, n_sites=basis.n_sites, up_spins=basis.up_spins, available=avail)
+    return problem, times, block, forecast
+
+
+def run_relaxation(scenario: Scenario, folder=None, options: RelaxOptions = RelaxOptions()) -> RelaxRun:
+    """Run the relaxation job of ``scenario`` into a run folder (new, or ``folder``).
+
+    Raises MemoryRefusal before allocating anything large when the run does not fit.
+    A folder that already holds an unfinished run of the same scenario is refused: use
+    :func:`resume_relaxation`.
+    """
+    text = scenario_to_toml(scenario)
+    if folder is not None and (Path(folder) / CHECKPOINT_NAME).exists():
+        raise FileExistsError(f"{folder} holds an unfinished run; continue it with 'largeq relax --resume {folder}'")
+    problem, times, block, forecast = _prepare(scenario, Path(folder or "."), options)  # refuse before mkdir
+    out = make_run_folder(folder, "relax")
+    atomic_write_text(out / SCENARIO_FILE, text)
+    return _execute(problem, text, out, times, block, forecast, options, resume=False)
+
+
+def resume_relaxation(folder, options: RelaxOptions = RelaxOptions()) -> RelaxRun:
+    """Continue the run in ``folder`` from its last checkpoint (or from t = 0 if none was written)."""
+    folder = Path(folder)
+    if not (folder / SCENARIO_FILE).exists():
+        raise FileNotFoundError(f"{folder} is not a relaxation run folder (no {SCENARIO_FILE})")
+    scenario = load_scenario(folder / SCENARIO_FILE)
+    text = scenario_to_toml(scenario)
+    problem, times, block, forecast = _prepare(scenario, folder, options)
+    return _execute(problem, text, folder, times, block, forecast, options, resume=True)
+
+
+def _execute(problem: Problem, text: str, folder: Path, times, block, forecast, options, *, resume: bool) -> RelaxRun:
+    scenario = problem.scenario
+    fp = fingerprint(text)
+    interval = scenario.numerics.checkpoint_seconds if options.checkpoint_seconds is None else options.checkpoint_seconds
+    ck = Checkpointer(folder, interval, fingerprint=fp)
+    op = problem.operator
+    psi_start, captured = problem.initial_vector()
+    rec = _Recorder(problem, psi_start, len(times))
+    start_index, elapsed_before, matvecs_before = 0, 0.0, 0
+    psi = psi_start
+    loaded = load_checkpoint(folder, expect_fingerprint=fp) if resume else None
+    if loaded is not None:
+        state, meta = loaded
+        if int(state["block"]) != block:
+            block = int(state["block"])  # resume with the block the run started with
+        bounds = SpectralBounds(**{k: (int(v) if k == "steps" else float(v)) for k, v in meta["bounds"].items()})
+        start_index = int(state["index"])
+        psi = np.ascontiguousarray(state["psi"])
+        rec.restore(state)
+        elapsed_before = float(state["elapsed"])
+        matvecs_before = int(state["matvecs"])
+    else:
+        t0 = time.perf_counter()
+        bounds = spectral_bounds(op, rng=np.random.default_rng(BOUNDS_SEED))
+        elapsed_before = time.perf_counter() - t0
+        matvecs_before = bounds.steps
+    last = len(times) - 1
+    wall0 = time.perf_counter()
+    bar = progress_bar(last, f"relax L={problem.n_sites}", enabled=options.progress)
+    bar.update(start_index)
+    stats_holder = {}
+
+    def state_at(i, psi_now):
+        st = {"psi": psi_now, "index": i, "block": block, "elapsed": elapsed_before + time.perf_counter() - wall0,
+              "matvecs": matvecs_before}
+        st.update(rec.arrays())
+        return st, {"bounds": {k: getattr(bounds, k) for k in ("e_min", "e_max", "ritz_min", "ritz_max",
+                                                                "residual_min", "residual_max", "steps")},
+                    "time": float(times[i])}
+
+    def on_output(i, t, psi_now):
+        rec.record(i, psi_now)
+        if i > start_index and (i % block == 0 or i == last) and i < last:
+            ck.maybe_save(lambda: state_at(i, psi_now))
+
+    def on_progress(i_done, n_total):
+        bar.update(i_done - bar.n)
+
+    if start_index == 0 and loaded is None:
+        on_output(0, times[0], psi)
+    if start_index < last:
+        stats = evolve(op, psi, times, method=scenario.numerics.method, bounds=bounds,
+                       tol=scenario.numerics.tolerance, block=block, on_output=on_output,
+                       start_index=start_index, progress=on_progress, emit_start=False)
+        stats_holder["stats"] = stats
+    bar.close()
+    wall = elapsed_before + time.perf_counter() - wall0
+    stats = stats_holder.get("stats")
+    matvecs = matvecs_before + (stats.matvecs if stats else 0)
+    summary = _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, matvecs, wall, captured)
+    ckfile = folder / CHECKPOINT_NAME
+    if ckfile.exists():
+        ckfile.unlink()  # the run is complete and saved; the checkpoint's state vector is no longer needed
+    return RelaxRun(folder, summary)
+
+
+def _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, matvecs, wall, captured) -> dict:
+    scenario = problem.scenario
+    analyses = {n: analyse_curve(times, rec.values[n]) for n in rec.names}
+    norm_drift = float(np.max(np.abs(rec.norm - 1.0)))
+    energy_drift = float(np.max(np.abs(rec.energy - rec.energy[0])))
+    obs_meta = {n: problem.observables[n] for n in rec.names}
+    tree = {
+        "curves": {
+            "times": Quantity(times, "1/J", "output times (inverse energy units)"),
+            **{n: Quantity(rec.values[n], "1", obs_meta[n].description) for n in rec.names},
+            "survival_probability": Quantity(rec.survival, "1", "|<psi(0)|psi(t)>|^2"),
+            "norm": Quantity(rec.norm, "1", "||psi(t)||"),
+            "energy": Quantity(rec.energy, "J", "<psi(t)|H|psi(t)>"),
+        },
+        "analysis": {
+            n: {
+                "equilibrium": a.equilibrium,
+                "equilibrium_err": a.equilibrium_err,
+                "temporal_variance": a.variance,
+                "tau_int": a.tau_int,
+                "relaxation_time": a.relaxation_time,
+                "settled": a.settled,
+                "window_start": a.window_start,
+                "window_end": a.window_end,
+                "running_average": a.running_average,
+                "distance": a.distance,
+                "verdict": a.verdict,
+            }
+            for n, a in analyses.items()
+        },
+        "observables": {
+            n: {"description": o.description, "norm": o.norm, "a_min": o.a_min, "a_max": o.a_max,
+                "norm_exact": o.norm_exact}
+            for n, o in obs_meta.items()
+        },
+        "hamiltonian": {
+            "x_mask": problem.hamiltonian.x_mask,
+            "z_mask": problem.hamiltonian.z_mask,
+            "coeff": problem.hamiltonian.coeff,
+        },
+        "fields": {k: v for k, v in _field_values(problem).items()},
+    }
+    numerics = {
+        "method": scenario.numerics.method,
+        "tolerance": scenario.numerics.tolerance,
+        "block": block,
+        "bounds": [bounds.e_min, bounds.e_max],
+        "matvecs": matvecs,
+        "max_step_error_estimate": stats.max_error_estimate if stats else 0.0,
+        "total_error_estimate": stats.total_error_estimate if stats else 0.0,
+        "memory_forecast_bytes": forecast.total_bytes,
+    }
+    attrs = {
+        "largeq_version": __version__,
+        "scenario_toml": text,
+        "title": scenario.title,
+        "conventions": spin_conventions(),
+        "versions": package_versions(),
+        "machine": run_metadata(),
+        "basis": problem.basis.describe(),
+        "basis_reason": problem.basis_reason,
+        "symmetries": problem.symmetries,
+        "initial_state": problem.start.label,
+        "initial_weight_in_basis": captured,
+        "numerics": numerics,
+        "wall_seconds": wall,
+        "norm_drift": norm_drift,
+        "energy_drift": energy_drift,
+        "seeds": {"bounds_lanczos": BOUNDS_SEED, **_seeds(scenario)},
+    }
+    write_results(folder / "results.h5", tree, attrs=attrs)
+    summary = {
+        "title": scenario.title,
+        "sites": problem.n_sites,
+        "basis": problem.basis.describe() | {"reason": problem.basis_reason},
+        "initial_state": problem.start.label,
+        "initial_energy": float(rec.energy[0]),
+        "energy_drift": energy_drift,
+        "norm_drift": norm_drift,
+        "wall_seconds": wall,
+        "matvecs": matvecs,
+        "method": scenario.numerics.method,
+        "tolerance": scenario.numerics.tolerance,
+        "observables": {
+            n: {
+                "equilibrium": a.equilibrium,
+                "equilibrium_err": a.equilibrium_err,
+                "temporal_variance": a.variance,
+                "relaxation_time": a.relaxation_time,
+                "settled": a.settled,
+                "window": [a.window_start, a.window_end],
+                "verdict": a.verdict,
+            }
+            for n, a in analyses.items()
+        },
+    }
+    write_summary(folder / "summary.json", summary)
+    _plots_and_report(problem, folder, times, rec, analyses, summary)
+    return summary
+
+
+def _field_values(problem):
+    from .model import field_values
+
+    return {axis: np.asarray(v, float) for axis, v in field_values(problem.scenario).items()}
+
+
+def _seeds(scenario) -> dict:
+    return {f"field_{f.axis}": f.seed for f in scenario.fields if getattr(f, "seed", None) is not None}
+
+
+def _plots_and_report(problem, folder: Path, times, rec, analyses, summary) -> None:
+    names = rec.names
+    plots.plot_relaxation(
+        folder / "relaxation.png", times, {n: rec.values[n] for n in names},
+        running_average={n: a.running_average for n, a in analyses.items()},
+        equilibrium={n: (a.equilibrium, a.band_halfwidth) for n, a in analyses.items()},
+        window=(analyses[names[0]].window_start, analyses[names[0]].window_end),
+        title=problem.scenario.title,
+    )
+    plots.plot_distance(folder / "distance.png", times, {n: a.distance for n, a in analyses.items()},
+                        fluctuation_level={n: a.variance for n, a in analyses.items()})
+    plots.plot_survival(folder / "survival.png", times, rec.survival)
+    rows = []
+    for n, a in analyses.items():
+        rows.append((f"{n}: equilibrium value", html.format_value_error(a.equilibrium, a.equilibrium_err),
+                     f"window t = {a.window_start:.3g} .. {a.window_end:.3g}"))
+        rows.append((f"{n}: temporal variance σ²", html.format_number(a.variance), ""))
+        rows.append((f"{n}: relaxation time", html.format_number(a.relaxation_time),
+                     "settled" if a.settled else "not settled"))
+    sections = [
+        html.Section("Relaxation curves", images=["relaxation.png"], table=rows,
+                     paragraphs=[f"{n}: {a.verdict}" for n, a in analyses.items()]),
+        html.Section("Distance to equilibrium", images=["distance.png"],
+                     table=[(f"{n}: σ²", html.format_number(a.variance), "") for n, a in analyses.items()]),
+        html.Section("Survival probability", images=["survival.png"], table=[
+            ("initial energy ⟨H⟩", html.format_number(summary["initial_energy"]), ""),
+            ("energy drift", html.format_number(summary["energy_drift"]), ""),
+            ("norm drift", html.format_number(summary["norm_drift"]), ""),
+        ]),
+        html.Section("Run", table=[
+            ("basis", problem.basis.label, problem.basis_reason),
+            ("initial state", problem.start.label, ""),
+            ("method", summary["method"], f"tolerance {summary['tolerance']:g}"),
+            ("matrix-vector products", str(summary["matvecs"]), ""),
+            ("wall time (s)", html.format_number(summary["wall_seconds"]), ""),
+            ("memory forecast", format_bytes(summary.get("memory_forecast_bytes", 0)) if "memory_forecast_bytes" in summary else "", ""),
+        ]),
+    ]
+    html.write_report(folder / "report.html", title=problem.scenario.title, sections=sections,
+                      subtitle=f"largeq {__version__}: relaxation of L = {problem.n_sites}")
