@@ -25,7 +25,7 @@ from numba import njit, prange
 
 _CHUNKS = 256  # work units of the parallel loop (each holds its own small scratch arrays)
 
-__all__ = ["fused_kernel", "expect_kernel", "coo_kernel", "popcount", "zsign"]
+__all__ = ["fused_kernel", "expect_kernel", "csr_count_kernel", "csr_fill_kernel", "popcount", "zsign"]
 
 
 @njit(inline="always", cache=True)
@@ -177,34 +177,47 @@ def expect_kernel(sector, offset, lo_up, lo_start,
             partial[hi] = tot
 
 
-@njit(cache=True)
-def coo_kernel(n_lo, sector, up_spins, offset, lo_rank, states, gx, gptr, gz, gc, count_only, rows, cols, vals):
-    """Matrix elements A[i, j] of a Pauli sum grouped by x_mask (generic per-state gather).
+@njit(inline="always", cache=True)
+def _element(b, up_spins, sector, n_lo, offset, lo_rank, gx, gptr, gz, gc, g):
+    """Column and value of the group-g matrix element in row b; column -1 when it vanishes."""
+    src = b ^ gx[g]
+    if sector and popcount(src) != up_spins:
+        return -1, gc[0] * 0
+    so = offset[src >> n_lo]
+    if so < 0:
+        return -1, gc[0] * 0
+    q0 = gptr[g]
+    c = gc[q0] * zsign(gz[q0], src)
+    for q in range(q0 + 1, gptr[g + 1]):
+        c += gc[q] * zsign(gz[q], src)
+    if c == 0:
+        return -1, c
+    return so + lo_rank[src & ((1 << n_lo) - 1)], c
+
+
+@njit(parallel=True, cache=True)
+def csr_count_kernel(n_lo, sector, up_spins, offset, lo_rank, states, gx, gptr, gz, gc, counts):
+    """Non-zeros per row of a Pauli sum grouped by x_mask (generic per-state gather).
 
     This is the plain reference path (one rank lookup per state and group) used to assemble
-    CSR matrices; it shares no tables with the fast kernels above.  With ``count_only`` the
-    number of non-zeros is returned and nothing is written.
+    CSR matrices; it shares no tables with the fast kernels above.
     """
-    mask = (1 << n_lo) - 1
-    nnz = 0
-    for i in range(states.shape[0]):
-        b = states[i]
+    for i in prange(states.shape[0]):
+        n = 0
         for g in range(gx.shape[0]):
-            src = b ^ gx[g]
-            if sector and popcount(src) != up_spins:
-                continue
-            so = offset[src >> n_lo]
-            if so < 0:
-                continue
-            q0 = gptr[g]
-            c = gc[q0] * zsign(gz[q0], src)
-            for q in range(q0 + 1, gptr[g + 1]):
-                c += gc[q] * zsign(gz[q], src)
-            if c == 0:
-                continue
-            if not count_only:
-                rows[nnz] = i
-                cols[nnz] = so + lo_rank[src & mask]
-                vals[nnz] = c
-            nnz += 1
-    return nnz
+            col, _ = _element(states[i], up_spins, sector, n_lo, offset, lo_rank, gx, gptr, gz, gc, g)
+            if col >= 0:
+                n += 1
+        counts[i] = n
+
+
+@njit(parallel=True, cache=True)
+def csr_fill_kernel(n_lo, sector, up_spins, offset, lo_rank, states, gx, gptr, gz, gc, indptr, indices, data):
+    for i in prange(states.shape[0]):
+        k = indptr[i]
+        for g in range(gx.shape[0]):
+            col, c = _element(states[i], up_spins, sector, n_lo, offset, lo_rank, gx, gptr, gz, gc, g)
+            if col >= 0:
+                indices[k] = col
+                data[k] = c
+                k += 1

@@ -263,22 +263,35 @@ class PauliOperator(LinearOperator):
 
     # ------------------------------------------------------------------ explicit matrices
     def to_csr(self, max_dim: int = 5_000_000) -> sp.csr_matrix:
-        """Assemble the same operator as a CSR matrix (small dimensions only)."""
+        """Assemble the same operator as a CSR matrix (small dimensions; a generic, independent code path).
+
+        Column indices are int32 when the dimension allows; values are real for real operators.
+        """
         b = self.basis
         if b.dim > max_dim:
             raise MemoryError(f"to_csr: dimension {b.dim:,} exceeds max_dim = {max_dim:,}")
         states = b.states()
         gx, gptr, gz, gc = _group_arrays(self.pauli.groups(), np.complex128)
+        if self.coeff_dtype == np.float64:
+            gc = np.ascontiguousarray(gc.real)
+        if gc.size == 0:
+            return sp.csr_matrix(self.shape, dtype=self.coeff_dtype)
         args = (b.n_lo, b.is_sector, -1 if b.up_spins is None else b.up_spins, b.block_offset, b.lo_rank, states,
                 gx, gptr, gz, gc)
-        dummy_i = np.zeros(0, np.int64)
-        nnz = kernels.coo_kernel(*args, True, dummy_i, dummy_i, np.zeros(0, np.complex128))
-        rows = np.empty(nnz, np.int64); cols = np.empty(nnz, np.int64); vals = np.empty(nnz, np.complex128)
-        kernels.coo_kernel(*args, False, rows, cols, vals)
-        if self.coeff_dtype == np.float64:
-            vals = vals.real.copy()
-        m = sp.coo_matrix((vals, (rows, cols)), shape=self.shape).tocsr()
-        m.sum_duplicates()
+        counts = np.empty(b.dim, np.int64)
+        kernels.csr_count_kernel(*args, counts)
+        indptr = np.zeros(b.dim + 1, np.int64)
+        np.cumsum(counts, out=indptr[1:])
+        del counts
+        nnz = int(indptr[-1])
+        idx_dtype = np.int32 if max(nnz, b.dim) < 2**31 - 1 else np.int64
+        indices = np.empty(nnz, idx_dtype)
+        data = np.empty(nnz, self.coeff_dtype)
+        kernels.csr_fill_kernel(*args, indptr, indices, data)
+        if idx_dtype == np.int32:
+            indptr = indptr.astype(np.int32)
+        m = sp.csr_matrix((data, indices, indptr), shape=self.shape)
+        m.has_canonical_format = False
         return m
 
     def to_dense(self, max_dim: int = 20_000) -> np.ndarray:

@@ -122,7 +122,7 @@ def check_fits(forecast: MemoryForecast, *, n_sites: int, up_spins: int | None, 
     if forecast.total_bytes <= fraction * avail:
         return
     options = []
-    for L in range(n_sites - 1, 1, -1):
+    for L in range(n_sites - 2, 1, -2):  # same parity: Neel and staggered patterns need even L
         dim = comb(L, L // 2) if up_spins is not None else 2**L
         f = evolution_forecast(dim, L, method="chebyshev") if forecast.method != "exact" else exact_forecast(dim)
         if f.total_bytes <= fraction * avail:
@@ -137,6 +137,8 @@ def check_fits(forecast: MemoryForecast, *, n_sites: int, up_spins: int | None, 
         options.append("method = 'chebyshev' holds 5 vectors instead of the Krylov basis")
     if forecast.method == "chebyshev" and forecast.vectors > 5:
         options.append("a smaller output block (fewer accumulator vectors)")
+    if not options:
+        options.append("none on this machine: use one with more memory (see 'largeq describe' for the forecast)")
     raise MemoryRefusal(
         f"refusing to start: the {forecast.method} run needs about {format_bytes(forecast.total_bytes)} "
         f"({forecast.vectors:g} vectors of {format_bytes(forecast.vector_bytes)} for dimension {forecast.dimension:,}) "

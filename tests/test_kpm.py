@@ -24,7 +24,7 @@ from largeq.engines.kpm import (
     reconstruct_density,
 )
 
-from ._kpm_models import j1j2_xxz_ring, mixed_field_ising, neel_state, real_csr
+from ._kpm_models import j1j2_xxz_ring, neel_state, real_csr
 
 
 @pytest.fixture(scope="module")
@@ -137,9 +137,10 @@ def test_ldos_neel_matches_analytic_moments():
     # <H> = L(-J1 D1 + J2 D2)/4 and <H^2> - <H>^2 = L J1^2 / 4.
     L, J1, D1, J2, D2 = 10, 1.0, 0.7, 0.3, 1.3
     H = j1j2_xxz_ring(L, J1, D1, J2, D2)
-    e = np.linalg.eigvalsh(H.toarray())
+    # norm bound: each bond term J(SxSx + SySy + D SzSz) has norm <= J(2 + |D|)/4
+    bound = L * (J1 * (2 + D1) + J2 * (2 + D2)) / 4
     psi = 3.0 * neel_state(L)  # non-normalised input on purpose
-    res = local_density(H, psi, 80, (e[0], e[-1]))
+    res = local_density(H, psi, 80, (-bound, bound))
     mean = L * (-J1 * D1 + J2 * D2) / 4
     var = L * J1**2 / 4
     assert isinstance(res, SpectralDensity)
@@ -211,15 +212,13 @@ def test_dos_counting_bracketed_by_exact(ring10, n_moments):
     assert res.cumulative[-1] == pytest.approx(D, abs=1.0 + 4 * res.cumulative_err[-1])
 
 
-def test_dos_error_bars_are_honest():
+def test_dos_error_bars_are_honest(ring10):
     """Deviation of the stochastic DOS from the exact-moment KPM DOS, in units of its error bar.
 
     With R = 20 vectors the z-scores follow roughly a Student t with 19 dof (E z^2 = 19/17);
     nodes of one run are strongly correlated, so we pool 8 independent seeds.
     """
-    L = 10
-    H = mixed_field_ising(L)  # Banuls, Cirac & Hastings, PRL 106, 050405 (2011) parameters
-    e = np.linalg.eigvalsh(H.toarray())
+    H, e, _ = ring10  # reference spectrum from dense numpy.linalg.eigh
     bounds = (e[0] - 0.05, e[-1] + 0.05)
     N = 64
     a, _ = chebyshev_scale(bounds)

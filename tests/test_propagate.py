@@ -412,3 +412,81 @@ def test_scipy_krylov_peer_agrees(dense_cache):
         ref = v @ (np.exp(-1j * ev * t) * (v.conj().T @ psi0))
         assert np.linalg.norm(states[i] - ref) <= 1e-9
     assert stats.method == "scipy-krylov" and stats.matvecs > 0
+
+
+class StrictFusedOperator:
+    """Minimal operator with its own ``fused_update`` that enforces the contract strictly:
+    distinct contiguous vectors, and with gamma == 0 the old content of y is poisoned with NaN
+    first (so an engine relying on it would fail).  Counts products."""
+
+    def __init__(self, h):
+        self.h = h
+        self.shape = h.shape
+        self.dtype = h.dtype
+        self.calls = 0
+
+    def fused_update(self, x, y, alpha, beta, gamma):
+        assert x is not y and not np.shares_memory(x, y)
+        assert x.flags.c_contiguous and y.flags.c_contiguous
+        self.calls += 1
+        hx = self.h @ x
+        if gamma == 0:
+            y[...] = np.nan
+            y[...] = alpha * hx + beta * x
+        else:
+            y[...] = alpha * hx + beta * x + gamma * y
+
+    def __matmul__(self, x):
+        raise AssertionError("engines must use fused_update when the operator provides it")
+
+
+@pytest.mark.parametrize("method", ["chebyshev", "lanczos"])
+def test_fused_update_contract(dense_cache, method):
+    h, ev, v = dense_cache("mixed_ising_L9")
+    op = StrictFusedOperator(h)
+    psi0 = random_state(h.shape[0], 12)
+    sb = spectral_bounds(op)
+    assert op.calls == sb.steps
+    op.calls = 0
+    stats, states = _run(op, psi0, [0.0, 0.8, 2.0], method=method, bounds=sb, tol=1e-12)
+    assert op.calls == stats.matvecs  # the matvec count is honest
+    ref = v @ (np.exp(-1j * ev * 2.0) * (v.conj().T @ psi0))
+    assert np.linalg.norm(states[2] - ref) <= 1e-10
+
+
+def test_largeq_pauli_operator_integration():
+    # the package's own matrix-free operator (fused_update path) against the kron reference
+    pauli = pytest.importorskip("largeq.pauli")
+    ops = pytest.importorskip("largeq.operators")
+    basis_mod = pytest.importorskip("largeq.basis")
+    L = 8
+    terms = pauli.empty(L)
+    for j in range(L):
+        for r, J, d in ((1, 1.0, 0.8), (2, 0.3, 1.3)):
+            k = (j + r) % L
+            for a, c in (("X", J / 4), ("Y", J / 4), ("Z", J * d / 4)):
+                terms = terms + pauli.pauli_string(L, {j: a, k: a}, c)
+    op = ops.pauli_operator(terms, basis_mod.full_basis(L))
+    h = xxz_j1j2_ring(L, 1.0, 0.3, 0.8, 1.3)
+    psi0 = random_state(2 ** L, 13)
+    ev, v = np.linalg.eigh(h.toarray())
+    ref = v @ (np.exp(-1j * ev * 1.7) * (v.conj().T @ psi0))
+    for method in ("chebyshev", "lanczos"):
+        _, states = _run(op, psi0, [0.0, 1.7], method=method, tol=1e-12)
+        assert np.linalg.norm(states[1] - ref) <= 1e-10, method
+
+
+@pytest.mark.parametrize("args, match", [
+    ((-1.0, 1e-10), "x = a\\*dt"), ((np.inf, 1e-10), "x = a\\*dt"), ((1.0, 0.0), "tol"),
+    ((1.0, 1.5), "tol")])
+def test_chebyshev_order_bad_arguments(args, match):
+    with pytest.raises(ValueError, match=match):
+        chebyshev_order(*args)
+
+
+def test_chebyshev_order_zero_and_tiny_x():
+    assert chebyshev_order(0.0) == (1, 0.0)
+    order, bound = chebyshev_order(1e-300, 1e-10)
+    assert order == 1 and bound <= 1e-10
+    with pytest.raises(ValueError, match="m must be"):
+        krylov_apriori_bound(0, 1.0, 1.0)

@@ -12,7 +12,9 @@ with the measured correlation time, which is the usual practical reading (common
 Relaxation time: raw points of a fluctuating curve leave a 2-sigma band about 5 % of the time even after
 relaxation, so the test uses the centred rolling mean of d(t) = (<A(t)> - A_eq)^2 over a short smoothing
 window w: t_relax = the first time after which sqrt(rolling mean of d) stays inside
-k * sqrt(sigma_A^2 + err^2) (k = ``band``, default 2) to the end of the run.  For a transient
+k * sqrt(s^2 + err^2) (k = ``band``, default 2) to the end of the run, where s^2 = min(sigma_A^2,
+(1.4826 MAD)^2) uses the robust median-absolute-deviation scale when it is smaller (a late excursion must
+not widen the band meant to detect it; common practice).  For a transient
 B e^{-t/tau} cos(omega t) on top of fluctuations of variance s^2 this is the time where
 B^2 e^{-2t/tau} / 2 + s^2 = k^2 (s^2 + err^2).
 """
@@ -172,7 +174,7 @@ class CurveAnalysis:
     band : float
         k in the band equilibrium +- k sqrt(sigma_A^2 + err^2).
     band_halfwidth : float
-        k sqrt(sigma_A^2 + err^2).
+        k sqrt(s^2 + err^2), s^2 = min(sigma_A^2, (1.4826 * median absolute deviation)^2) in the window.
     smoothing : float
         Width w of the rolling window used for the relaxation-time test (time units).
     relaxation_time : float
@@ -254,8 +256,9 @@ def analyse_curve(
         k of the band (default 2).
     smoothing : float, optional
         Rolling-window width w for the relaxation-time test (time units); default
-        max(SMOOTH_TAUS tau_int, 2 % of the run, 3 median grid steps), SMOOTH_TAUS = 20,
-        so the rolling mean of d averages ~10 independent samples and noise alone rarely crosses the band.
+        min(max(SMOOTH_TAUS tau_int, 2 % of the run, 3 median grid steps), 10 % of the run), SMOOTH_TAUS
+        = 20, so the rolling mean of d averages ~10 independent samples and noise alone rarely crosses the
+        band.
 
     Returns
     -------
@@ -284,11 +287,15 @@ def analyse_curve(
     eq, err = wm.mean, wm.stderr
     variance = wm.std**2
     distance = (v - eq) ** 2
-    halfwidth = band * float(np.sqrt(variance + err**2))
+    # band scale: the smaller of the std and the robust 1.4826 * median |A - median| (common practice), so a
+    # rare late excursion cannot widen the band that is meant to detect it
+    robust = 1.4826 * float(np.median(np.abs(vw - np.median(vw))))
+    scale2 = min(variance, robust**2)
+    halfwidth = band * float(np.sqrt(scale2 + err**2))
     run = t[-1] - t[0]
     dt_med = float(np.median(np.diff(t)))
     if smoothing is None:
-        smoothing = max(SMOOTH_TAUS * wm.tau_int, 0.02 * run, 3.0 * dt_med)
+        smoothing = min(max(SMOOTH_TAUS * wm.tau_int, 0.02 * run, 3.0 * dt_med), 0.1 * run)
     elif not (smoothing > 0):
         raise ValueError(f"smoothing must be > 0 (time units), got {smoothing!r}")
     rms = np.sqrt(_rolling_mean(t, distance, float(smoothing)))

@@ -281,6 +281,14 @@ def _weighted_jackknife(log_w: np.ndarray, columns: list[np.ndarray], func: Call
     return est, err
 
 
+def _expect(A, x: np.ndarray, buf: np.ndarray) -> float:
+    """Re <x|A|x>, using ``buf`` as the product's output when its dtype fits (else A @ x)."""
+    if result_dtype(A, x) == buf.dtype:
+        apply_into(A, x, buf)
+        return float(np.vdot(x, buf).real)
+    return float(np.vdot(x, A @ x).real)
+
+
 def _check_observables(observables, dim):
     if observables is None:
         return {}
@@ -426,8 +434,7 @@ def canonical_averages(
                 e1[r, k] = cur_e
                 e2[r, k] = cur_e2
                 for name, A in obs.items():
-                    apply_into(A, bufs[0], bufs[2])
-                    vals[name][r, k] = np.vdot(bufs[0], bufs[2]).real
+                    vals[name][r, k] = _expect(A, bufs[0], bufs[2])
     energy, energy_err = _weighted_jackknife(log_w, [e1], lambda m: m)
     var, var_err = _weighted_jackknife(log_w, [e1, e2], lambda m1, m2: m2 - m1 * m1)
     values, errors = {}, {}
@@ -622,8 +629,7 @@ def microcanonical_average(
         e1[r, 0] = np.vdot(f, bufs[0]).real
         e2[r, 0] = np.vdot(bufs[0], bufs[0]).real
         for name, A in obs.items():
-            apply_into(A, f, bufs[0])
-            vals[name][r, 0] = np.vdot(f, bufs[0]).real
+            vals[name][r, 0] = _expect(A, f, bufs[0])
     log_w = np.log(norm2)
     me, me_err = _weighted_jackknife(log_w, [e1], lambda m: m)
     sp, sp_err = _weighted_jackknife(log_w, [e1, e2], lambda m1, m2: np.sqrt(np.maximum(m2 - m1 * m1, 0)))
