@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-from . import model
 from .assemble import build_problem, spin_conventions
 from .planner import available_bytes, evolution_forecast, exact_forecast, format_bytes, kpm_forecast
 from .scenario import Scenario

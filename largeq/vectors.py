@@ -63,6 +63,8 @@ def vdot(x: np.ndarray, y: np.ndarray) -> complex:
     """sum_i conj(x_i) y_i (complex), thread-count independent."""
     if x.shape != y.shape or x.ndim != 1:
         raise ValueError(f"vdot: need two 1-d vectors of equal length, got {x.shape} and {y.shape}")
+    if not (x.flags.c_contiguous and y.flags.c_contiguous) or x.dtype.kind not in "fc" or y.dtype.kind not in "fc":
+        return complex(np.vdot(x, y))
     out = np.empty((x.shape[0] + _CHUNK - 1) // _CHUNK, np.complex128)
     with threads_for(x.shape[0]):
         _vdot_chunks(x, y, out)

@@ -13,7 +13,8 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from numba import njit, prange
+
+from ..vectors import axpy, norm, vdot
 from scipy.linalg import eigh_tridiagonal
 
 from .linalg import fused_update
@@ -71,78 +72,10 @@ class SpectralBounds:
         return (self.e_max - self.e_min) / (2.0 - eps), self.center
 
 
-@njit(cache=True)
-def _axpy_serial(a, x, y):  # pragma: no cover - compiled
-    for i in range(x.shape[0]):
-        y[i] += a * x[i]
-
-
-@njit(cache=True, parallel=True)
-def _axpy_parallel(a, x, y):  # pragma: no cover - compiled
-    for i in prange(x.shape[0]):
-        y[i] += a * x[i]
-
-
-#: Vectors at least this long use the threaded axpy (elementwise, so the result does not depend
-#: on the thread count).  Below it, threads cost more than they save (and much more on a
-#: loaded machine).
-PARALLEL_AXPY_MIN = 1 << 22
-
-
-def _axpy(a, x: np.ndarray, y: np.ndarray) -> None:
-    """In place ``y <- y + a x`` without temporaries (compiled loop; BLAS axpy was 100x slower
-    on the shared 2-core test machine because of OpenBLAS thread contention)."""
-    if (x.dtype == y.dtype and x.dtype in (np.float64, np.complex128) and x.ndim == y.ndim == 1
-            and x.shape == y.shape and (y.dtype == np.complex128 or not isinstance(a, complex))):
-        a = y.dtype.type(a)
-        if x.shape[0] >= PARALLEL_AXPY_MIN:
-            _axpy_parallel(a, x, y)
-        else:
-            _axpy_serial(a, x, y)
-        return
-    y += a * x
-
-
-_DOT_CHUNK = 1 << 16
-
-
-@njit(cache=True)
-def _vdot_serial(x, y):  # pragma: no cover - compiled
-    s = x.dtype.type(0) * y.dtype.type(0)
-    for i in range(x.shape[0]):
-        s += np.conj(x[i]) * y[i]
-    return s
-
-
-@njit(cache=True, parallel=True)
-def _vdot_chunked(x, y):  # pragma: no cover - compiled
-    n = x.shape[0]
-    nch = (n + _DOT_CHUNK - 1) // _DOT_CHUNK
-    part = np.zeros(nch, dtype=np.result_type(x.dtype, y.dtype))
-    for c in prange(nch):
-        s = part[c]
-        for i in range(c * _DOT_CHUNK, min(n, (c + 1) * _DOT_CHUNK)):
-            s += np.conj(x[i]) * y[i]
-        part[c] = s
-    tot = part[0] * 0
-    for c in range(nch):  # fixed order: independent of the thread schedule
-        tot += part[c]
-    return tot
-
-
-def _vdot(x: np.ndarray, y: np.ndarray):
-    """``sum conj(x) y`` by a compiled loop in a fixed summation order (deterministic for any
-    thread count; avoids BLAS thread contention on small shared machines)."""
-    if x.dtype == y.dtype and x.dtype in (np.float64, np.complex128) and x.ndim == y.ndim == 1:
-        if x.shape[0] >= PARALLEL_AXPY_MIN:
-            return _vdot_chunked(x, y)
-        return _vdot_serial(x, y)
-    return np.vdot(x, y)
-
-
-def _norm(x: np.ndarray) -> float:
-    """Euclidean norm through :func:`_vdot`."""
-    return float(np.sqrt(_vdot(x, x).real))
+# Level-1 vector operations live in largeq.vectors (compiled, thread-count independent).
+_axpy = axpy
+_vdot = vdot
+_norm = norm
 
 
 def _check_op(op) -> int:

@@ -30,8 +30,8 @@ from typing import Callable
 
 import numpy as np
 import scipy.fft
-import scipy.linalg.blas as _blas
 
+from ..vectors import axpy, vdot
 from .linalg import apply_into, fused_update, result_dtype
 
 __all__ = [
@@ -49,7 +49,6 @@ __all__ = [
     "dos_on_grid",
     "counting_function",
     "apply_chebyshev_series",
-    "axpy",
 ]
 
 _KERNELS = ("jackson", "lorentz", "none")
@@ -100,18 +99,6 @@ def _check_n_moments(n_moments) -> int:
     return int(n_moments)
 
 
-def axpy(alpha, x: np.ndarray, y: np.ndarray) -> np.ndarray:
-    """In place ``y <- alpha * x + y`` without a temporary (BLAS for contiguous float64 /
-    complex128 vectors, numpy otherwise); returns ``y``."""
-    if y.size < 2**31 - 1 and y.flags.c_contiguous and x.flags.c_contiguous and x.dtype == y.dtype:
-        if y.dtype == np.complex128:
-            return _blas.zaxpy(x, y, a=complex(alpha))
-        if y.dtype == np.float64 and np.isreal(alpha):
-            return _blas.daxpy(x, y, a=float(np.real(alpha)))
-    y += alpha * x
-    return y
-
-
 # --------------------------------------------------------------------------- moments
 def chebyshev_moments(op, v: np.ndarray, n_moments: int, bounds, *, eps: float = 0.01) -> np.ndarray:
     """Chebyshev moments ``mu_n = <v|T_n(Ht)|v>``, n = 0 .. n_moments - 1 (dimensionless).
@@ -141,17 +128,17 @@ def chebyshev_moments(op, v: np.ndarray, n_moments: int, bounds, *, eps: float =
     prev = np.array(v, dtype=dtype, copy=True)       # phi_0
     cur = np.empty_like(prev)
     fused_update(op, prev, cur, 1.0 / a, -b / a, 0.0)  # phi_1 = Ht phi_0
-    mu0 = np.vdot(prev, prev).real
-    mu1 = np.vdot(prev, cur).real
+    mu0 = vdot(prev, prev).real
+    mu1 = vdot(prev, cur).real
     mu[0] = mu0
     mu[1] = mu1
     n = 1  # cur = phi_n, prev = phi_{n-1}
     while 2 * n < n_moments:
-        mu[2 * n] = 2.0 * np.vdot(cur, cur).real - mu0
+        mu[2 * n] = 2.0 * vdot(cur, cur).real - mu0
         if 2 * n + 1 >= n_moments:
             break
         fused_update(op, cur, prev, 2.0 / a, -2.0 * b / a, -1.0)  # prev <- phi_{n+1}
-        mu[2 * n + 1] = 2.0 * np.vdot(prev, cur).real - mu1
+        mu[2 * n + 1] = 2.0 * vdot(prev, cur).real - mu1
         prev, cur = cur, prev
         n += 1
     return mu
@@ -356,8 +343,8 @@ def local_density(
         raise ValueError("psi must be a nonzero vector")
     hpsi = np.empty(psi.shape, dtype=result_dtype(op, psi))
     apply_into(op, psi, hpsi)
-    mean_exact = float(np.vdot(psi, hpsi).real) / norm**2
-    var_exact = float(np.vdot(hpsi, hpsi).real) / norm**2 - mean_exact**2
+    mean_exact = float(vdot(psi, hpsi).real) / norm**2
+    var_exact = float(vdot(hpsi, hpsi).real) / norm**2 - mean_exact**2
     del hpsi
     mu = chebyshev_moments(op, psi, n_moments, bounds, eps=eps) / norm**2
     mean_m, var_m = _moment_mean_var(mu, a, b)

@@ -32,6 +32,7 @@ import scipy.interpolate
 import scipy.optimize
 import scipy.special
 
+from ..vectors import norm, vdot
 from .kpm import _apply_series, apply_chebyshev_series, chebyshev_scale
 from .linalg import apply_into, result_dtype
 
@@ -100,7 +101,7 @@ def random_state(
             else:
                 out[s0 : s0 + u.size] = np.where(u < 0.5, -1.0, 1.0)
     if normalize:
-        out /= np.linalg.norm(out)
+        out /= norm(out)
     return out
 
 
@@ -167,7 +168,7 @@ def trace_estimate(
     r = None
     for i in range(int(n_vectors)):
         r = random_state(dim, rng, kind=kind, dtype=dtype, normalize=False, out=r)
-        samples[i] = np.vdot(r, apply(r)).real
+        samples[i] = vdot(r, apply(r)).real
     R = samples.size
     value = float(samples.mean())
     error = float(samples.std(ddof=1) / np.sqrt(R)) if R > 1 else float("nan")
@@ -219,7 +220,7 @@ def _advance(op, bufs, tau, a, b, x_now, tol):
         state, work, spare = bufs
         new = _apply_series(op, state, coeffs, a, b, overwrite=True, work=work, out=spare)
         matvecs += coeffs.size - 1
-        nrm = np.linalg.norm(new)
+        nrm = norm(new)
         if not (nrm > 0 and np.isfinite(nrm)):
             raise FloatingPointError(f"imaginary-time step lost the state (norm {nrm}); check the bounds")
         new /= nrm
@@ -227,8 +228,8 @@ def _advance(op, bufs, tau, a, b, x_now, tol):
         bufs[0], bufs[2] = new, state
         apply_into(op, bufs[0], bufs[1])
         matvecs += 1
-        energy = np.vdot(bufs[0], bufs[1]).real
-        energy2 = np.vdot(bufs[1], bufs[1]).real
+        energy = vdot(bufs[0], bufs[1]).real
+        energy2 = vdot(bufs[1], bufs[1]).real
         x_now = (energy - b) / a
         remaining -= step
     return log_norm, x_now, energy, energy2, matvecs
@@ -244,13 +245,13 @@ def boltzmann_apply(op, v: np.ndarray, tau: float, bounds, *, tol: float = 1e-10
     a, b = chebyshev_scale(bounds, eps)
     v = np.asarray(v)
     dtype = result_dtype(op, v)
-    nv = np.linalg.norm(v)
+    nv = norm(v)
     if not nv > 0:
         raise ValueError("v must be a nonzero vector")
     state = np.array(v, dtype=dtype, copy=True) / nv
     bufs = [state, np.empty_like(state), np.empty_like(state)]
     apply_into(op, bufs[0], bufs[1])
-    x_now = (np.vdot(bufs[0], bufs[1]).real - b) / a
+    x_now = (vdot(bufs[0], bufs[1]).real - b) / a
     log_norm, *_ = _advance(op, bufs, tau, a, b, x_now, tol)
     return bufs[0], float(log_norm + np.log(nv))
 
@@ -285,8 +286,8 @@ def _expect(A, x: np.ndarray, buf: np.ndarray) -> float:
     """Re <x|A|x>, using ``buf`` as the product's output when its dtype fits (else A @ x)."""
     if result_dtype(A, x) == buf.dtype:
         apply_into(A, x, buf)
-        return float(np.vdot(x, buf).real)
-    return float(np.vdot(x, A @ x).real)
+        return float(vdot(x, buf).real)
+    return float(vdot(x, A @ x).real)
 
 
 def _check_observables(observables, dim):
@@ -419,8 +420,8 @@ def canonical_averages(
                 bufs[0][...] = random_state(dim, children[r], kind=vector_kind, dtype=vdtype)
             apply_into(op, bufs[0], bufs[1])
             matvecs += 1
-            cur_e = np.vdot(bufs[0], bufs[1]).real
-            cur_e2 = np.vdot(bufs[1], bufs[1]).real
+            cur_e = vdot(bufs[0], bufs[1]).real
+            cur_e2 = vdot(bufs[1], bufs[1]).real
             x_now = (cur_e - b) / a
             cur_beta, cur_log = 0.0, 0.0
             for k in side:
@@ -620,14 +621,14 @@ def microcanonical_average(
         f = apply_chebyshev_series(op, bufs[0], coeffs, bounds, eps=eps, overwrite=True,
                                    work=bufs[1], out=bufs[2])
         matvecs += coeffs.size + len(obs)  # series (size - 1), H f, observables
-        n2 = np.vdot(f, f).real
+        n2 = vdot(f, f).real
         if not n2 > 0:
             raise FloatingPointError("filtered state vanished; is the energy inside the spectrum?")
         norm2[r, 0] = n2
         f /= np.sqrt(n2)
         apply_into(op, f, bufs[0])
-        e1[r, 0] = np.vdot(f, bufs[0]).real
-        e2[r, 0] = np.vdot(bufs[0], bufs[0]).real
+        e1[r, 0] = vdot(f, bufs[0]).real
+        e2[r, 0] = vdot(bufs[0], bufs[0]).real
         for name, A in obs.items():
             vals[name][r, 0] = _expect(A, f, bufs[0])
     log_w = np.log(norm2)
