@@ -65,8 +65,9 @@ def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--quick", action="store_true", help="L = 20, 22 only")
     ap.add_argument("--repeats", type=int, default=7)
+    ap.add_argument("--sizes", type=int, nargs="+", default=None, help="chain lengths to run (overrides the default list)")
     args = ap.parse_args()
-    sizes = [20, 22] if args.quick else [20, 22, 24, 26, 28]
+    sizes = args.sizes or ([20, 22] if args.quick else [20, 22, 24, 26, 28])
     print(machine_line())
     bw = copy_bandwidth()
     print(f"# numpy copy bandwidth: {bw / 1e9:.2f} GB/s (read + write)")

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import importlib
 import json
 import sys
 from importlib import resources
@@ -11,6 +12,8 @@ from pathlib import Path
 from . import __version__
 
 EXAMPLES_PACKAGE = "largeq.examples_data"
+#: modules that add their own sub-commands through ``register(subparsers)``
+COMMAND_MODULES = ("largeq.spectra", "largeq.thermal", "largeq.crosscheck", "largeq.sweep")
 
 
 class UsageError(Exception):
@@ -94,7 +97,7 @@ def _print_relax_summary(run) -> None:
     print(f"  results: {run.folder}/ (results.h5, summary.json, report.html)")
 
 
-def _add_common(p, *, scenario_optional=False):
+def add_scenario_arguments(p, *, scenario_optional=False):
     p.add_argument("scenario", nargs="?" if scenario_optional else None,
                    help="scenario TOML file, or the name of a built-in example (see 'largeq examples')")
     p.add_argument("--sites", type=int, default=None, metavar="L",
@@ -113,12 +116,12 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(func=cmd_examples)
 
     p = sub.add_parser("describe", help="print a scenario's model, basis, dimension and memory needs (nothing is run)")
-    _add_common(p)
+    add_scenario_arguments(p)
     p.add_argument("--json", action="store_true", help="print the summary as JSON")
     p.set_defaults(func=cmd_describe)
 
     p = sub.add_parser("relax", help="main job: relaxation curves, equilibrium values, fluctuations, saved as a run folder")
-    _add_common(p, scenario_optional=True)
+    add_scenario_arguments(p, scenario_optional=True)
     p.add_argument("--out", default=None, metavar="FOLDER", help="run folder (default: runs/relax-<timestamp>)")
     p.add_argument("--resume", default=None, metavar="FOLDER", help="continue an interrupted run from its checkpoint")
     p.add_argument("--checkpoint-every", type=float, default=None, metavar="SECONDS",
@@ -129,6 +132,14 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument("--progress", dest="progress", action="store_true", default=None, help="always show a progress bar")
     g.add_argument("--no-progress", dest="progress", action="store_false", help="never show a progress bar")
     p.set_defaults(func=cmd_relax)
+    for name in COMMAND_MODULES:
+        try:
+            module = importlib.import_module(name)
+        except ModuleNotFoundError as exc:
+            if exc.name == name:
+                continue  # that command is not part of this version
+            raise
+        module.register(sub)
     return parser
 
 
