@@ -119,7 +119,7 @@ class _Recorder:
         self.energy[:] = state["energy"]
 
 
-def _prepare(scenario: Scenario, folder: Path, options: RelaxOptions):
+def _prepare(scenario: Scenario, options: RelaxOptions):
     problem = build_problem(scenario)
     basis = problem.basis
     method = scenario.numerics.method
@@ -141,7 +141,7 @@ def run_relaxation(scenario: Scenario, folder=None, options: RelaxOptions = Rela
     text = scenario_to_toml(scenario)
     if folder is not None and (Path(folder) / CHECKPOINT_NAME).exists():
         raise FileExistsError(f"{folder} holds an unfinished run; continue it with 'largeq relax --resume {folder}'")
-    problem, times, block, forecast = _prepare(scenario, Path(folder or "."), options)  # refuse before mkdir
+    problem, times, block, forecast = _prepare(scenario, options)  # refuse before creating the folder
     out = make_run_folder(folder, "relax")
     atomic_write_text(out / SCENARIO_FILE, text)
     return _execute(problem, text, out, times, block, forecast, options, resume=False)
@@ -154,7 +154,7 @@ def resume_relaxation(folder, options: RelaxOptions = RelaxOptions()) -> RelaxRu
         raise FileNotFoundError(f"{folder} is not a relaxation run folder (no {SCENARIO_FILE})")
     scenario = load_scenario(folder / SCENARIO_FILE)
     text = scenario_to_toml(scenario)
-    problem, times, block, forecast = _prepare(scenario, folder, options)
+    problem, times, block, forecast = _prepare(scenario, options)
     return _execute(problem, text, folder, times, block, forecast, options, resume=True)
 
 
@@ -307,6 +307,8 @@ def _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, m
         "matvecs": matvecs,
         "method": scenario.numerics.method,
         "tolerance": scenario.numerics.tolerance,
+        "block": block,
+        "memory_forecast_bytes": forecast.total_bytes,
         "observables": {
             n: {
                 "equilibrium": a.equilibrium,
@@ -370,7 +372,7 @@ def _plots_and_report(problem, folder: Path, times, rec, analyses, summary) -> N
             ("method", summary["method"], f"tolerance {summary['tolerance']:g}"),
             ("matrix-vector products", str(summary["matvecs"]), ""),
             ("wall time (s)", html.format_number(summary["wall_seconds"]), ""),
-            ("memory forecast", format_bytes(summary.get("memory_forecast_bytes", 0)) if "memory_forecast_bytes" in summary else "", ""),
+            ("memory forecast", format_bytes(summary["memory_forecast_bytes"]), "peak, forecast before the run"),
         ]),
     ]
     html.write_report(folder / "report.html", title=problem.scenario.title, sections=sections,

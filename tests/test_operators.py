@@ -214,3 +214,23 @@ def test_table_memory_is_tiny_compared_with_a_vector():
     L = 24
     op = PauliOperator(heisenberg_ring(L) + heisenberg_ring(L, J=0.3, r=2), magnetization_basis(L, 12))
     assert op.table_bytes() < 0.1 * op.basis.bytes_per_vector(np.float64)
+
+
+@pytest.mark.parametrize("example", ["neel_j1j2", "ising_tilted", "xx_neel", "disordered_heisenberg"])
+@pytest.mark.parametrize("basis_kind", ["chosen", "full"])
+def test_every_preset_matrix_free_equals_csr(example, basis_kind):
+    from largeq.assemble import build_problem
+    from largeq.cli import resolve_scenario
+
+    sc = resolve_scenario(example, 10)
+    problem = build_problem(sc)
+    basis = problem.basis if basis_kind == "chosen" else full_basis(10)
+    op = PauliOperator(problem.hamiltonian, basis)
+    M = op.to_csr()
+    rng = np.random.default_rng(5)
+    for x in (rng.normal(size=basis.dim), rng.normal(size=basis.dim) + 1j * rng.normal(size=basis.dim)):
+        np.testing.assert_allclose(op @ x, M @ x, rtol=0, atol=1e-12)
+    for name, obs in problem.observables.items():
+        A = PauliOperator(obs.pauli, basis)
+        x = rng.normal(size=basis.dim) + 1j * rng.normal(size=basis.dim)
+        np.testing.assert_allclose(A @ x, A.to_csr() @ x, rtol=0, atol=1e-12)

@@ -1,0 +1,408 @@
+"""``largeq crosscheck``: the large-L estimators against exact diagonalization at small L.
+
+For each chain length L (``scenario.with_length(L)``) whose state's symmetric subspace fits a dense
+diagonalization, compute exactly (``largeq.equilibration.exact_equilibration``) and by the estimators
+that also work past the exact-diagonalization wall, and compare:
+
+* d_eff: KPM estimate (``estimate_deff``) and the survival-probability plateau vs exact 1 / sum p_E^2;
+* <A>_inf: late-window mean of the relaxation curve (``evolve`` over the scenario's time grid, then
+  ``analyse_curve``) vs the diagonal ensemble;
+* sigma_A^2: late-window temporal variance vs the exact infinite-time variance (and the bound);
+* LDOS and DOS: Kolmogorov-Smirnov distance sup_E |F_KPM(E) - F_exact(E)| of the normalised counting
+  functions (the KPM one is the exact integral of the kernel-damped series, the exact one a step
+  function); also the distance to the exact counting function damped with the same Jackson kernel;
+* thermal values: canonical (TPQ, beta solved for <H>_beta = <psi|H|psi>) and microcanonical vs the
+  same ensembles from the dense spectrum of every symmetry block of the basis;
+* <r> in a fully resolved block and N(0), the largest gap degeneracy.
+
+A run folder gets ``results.h5``, ``summary.json`` (rewritten after each size), ``crosscheck.png``
+(estimate against exact over L) and ``report.html``.
+"""
+
+from __future__ import annotations
+
+import time
+from pathlib import Path
+
+import numpy as np
+
+from . import __version__
+from .analysis.equilibrium import GOE_R, POISSON_R
+from .analysis.relaxation import analyse_curve
+from .assemble import build_problem, spin_conventions
+from .engines.bounds import spectral_bounds
+from .engines.kpm import kernel_factors, reconstruct_cumulative
+from .engines.propagate import evolve
+from .equilibration import (BOUNDS_SEED, DenseLimitError, estimate_deff, exact_equilibration,
+                            exact_thermal_values, thermal_values)
+from .progress import progress_bar
+from .reports import html, plots
+from .reports.store import (Quantity, atomic_write_text, make_run_folder, package_versions, run_metadata,
+                            write_results, write_summary)
+from .scenario import scenario_to_toml
+from .symmetry_blocks import symmetry_group
+from .vectors import vdot
+
+__all__ = ["CrosscheckOptions", "crosscheck_size", "run_crosscheck", "format_table", "ks_distances", "register"]
+
+
+class CrosscheckOptions:
+    """Settings of a cross-check run (not physics).
+
+    Parameters
+    ----------
+    n_moments : int
+        KPM moments for the LDOS and DOS (default 256).
+    n_vectors : int
+        Random vectors for the DOS trace and the thermal averages (default 20).
+    seed : int
+        Seed of every random draw (one child generator per size and task).
+    max_dim : int
+        Largest dense diagonalization (default 13000).
+    progress : bool or None
+    """
+
+    def __init__(self, n_moments: int = 256, n_vectors: int = 20, seed: int = 20260202, max_dim: int = 13000,
+                 progress: bool | None = None):
+        if int(n_moments) != n_moments or n_moments < 16:
+            raise ValueError(f"n_moments must be an integer >= 16, got {n_moments!r}")
+        if int(n_vectors) != n_vectors or n_vectors < 2:
+            raise ValueError(f"n_vectors must be an integer >= 2 (error bars need two), got {n_vectors!r}")
+        self.n_moments, self.n_vectors, self.seed = int(n_moments), int(n_vectors), int(seed)
+        self.max_dim, self.progress = int(max_dim), progress
+
+
+def _exact_cumulative_damped(energies, weights, density):
+    """Exact counting function damped with the same kernel and scaling as the KPM ``density``."""
+    a, b = density.scale, density.shift
+    x = np.clip((np.asarray(energies) - b) / a, -1.0, 1.0)
+    n = np.arange(density.n_moments)
+    mu = np.cos(np.outer(n, np.arccos(x))) @ np.asarray(weights, dtype=float)  # sum_m w_m T_n(x_m)
+    g = kernel_factors("jackson", density.n_moments)
+    _, cum = reconstruct_cumulative(mu * g, density.energies.size)
+    return cum
+
+
+def ks_distances(grid, kpm_cumulative, energies, weights, density) -> tuple[float, float]:
+    """(sup |F_KPM - F_exact|, sup |F_KPM - F_exact damped|) on the KPM grid, both normalised to 1.
+
+    F_exact(E) = sum_{E_m <= E} w_m / sum w_m (a step function); the damped one is the exact counting
+    function expanded in the same Chebyshev series with the same Jackson factors.
+    """
+    e = np.asarray(energies, dtype=float)
+    w = np.asarray(weights, dtype=float)
+    order = np.argsort(e)
+    e, w = e[order], w[order]
+    total = w.sum()
+    step = np.concatenate([[0.0], np.cumsum(w)])[np.searchsorted(e, grid, side="right")] / total
+    f = np.asarray(kpm_cumulative) / kpm_cumulative[-1]
+    damped = _exact_cumulative_damped(e, w / total, density)
+    return float(np.max(np.abs(f - step))), float(np.max(np.abs(f - damped / damped[-1])))
+
+
+def _relaxation(problem, psi, bounds):
+    sc = problem.scenario
+    times = sc.time.times()
+    names = list(problem.observables)
+    ops = {n: problem.observable_operator(n) for n in names}
+    vals = {n: np.empty(times.size) for n in names}
+    surv = np.empty(times.size)
+
+    def on_output(i, t, v):
+        n2 = vdot(v, v).real
+        surv[i] = abs(vdot(psi, v)) ** 2 / n2
+        for n in names:
+            vals[n][i] = ops[n].expectation(v).real / n2
+
+    stats = evolve(problem.operator, psi, times, method=sc.numerics.method, bounds=bounds,
+                   tol=sc.numerics.tolerance, on_output=on_output)
+    return times, vals, surv, stats
+
+
+def _rel(est, exact):
+    return (est - exact) / abs(exact) if exact != 0 else float("nan")
+
+
+def crosscheck_size(scenario, L: int, options: CrosscheckOptions) -> dict:
+    """Exact values and estimates for one chain length (see the module docstring).
+
+    Returns
+    -------
+    dict
+        ``{'sites', 'status', ...}``; status 'ok' or 'skipped' (with ``reason``).
+    """
+    t0 = time.perf_counter()
+    sc = scenario.with_length(L)
+    problem = build_problem(sc)
+    psi, captured = problem.initial_vector()
+    psi = psi / np.linalg.norm(psi)
+    group = symmetry_group(problem)
+    try:
+        ex = exact_equilibration(problem, max_dim=options.max_dim, psi=psi, group=group)
+    except DenseLimitError as exc:
+        return {"sites": L, "status": "skipped", "reason": str(exc)}
+    rngs = np.random.default_rng([options.seed, L]).spawn(2)
+    bounds = spectral_bounds(problem.operator, rng=np.random.default_rng(BOUNDS_SEED))
+    times, curves, surv, stats = _relaxation(problem, psi, bounds)
+    analyses = {n: analyse_curve(times, v) for n, v in curves.items()}
+    est = estimate_deff(problem, n_moments=options.n_moments, n_vectors=options.n_vectors, rng=rngs[0],
+                        psi=psi, bounds=bounds, survival=(times, surv), level_ratio=ex.level_ratio, group=group)
+    ldos_ks, ldos_ks_d = ks_distances(est.ldos.energies, est.ldos.cumulative, ex.quench.level_energies,
+                                      ex.quench.level_weights, est.ldos)
+    dos_ks, dos_ks_d = ks_distances(est.dos.energies, est.dos.cumulative, ex.energies, np.ones(ex.energies.size),
+                                    est.dos)
+    th = thermal_values(problem, ex.energy_mean, n_vectors=options.n_vectors, rng=rngs[1], bounds=bounds)
+    tx = exact_thermal_values(problem, ex.energy_mean, width=th.width, max_dim=options.max_dim, group=group)
+    obs = {}
+    for n, o in ex.observables.items():
+        a = analyses[n]
+        obs[n] = {
+            "equilibrium_exact": o.equilibrium, "equilibrium_curve": a.equilibrium,
+            "equilibrium_curve_err": a.equilibrium_err, "settled": a.settled,
+            "variance_exact": o.variance, "variance_curve": a.variance,
+            "bound": o.bound_range, "bound_norm": o.bound_norm, "variance_over_bound": o.ratio, "bound_holds": o.holds,
+            "canonical_exact": tx.canonical[n], "canonical_tpq": th.canonical[n], "canonical_tpq_err": th.canonical_err[n],
+            "microcanonical_exact": tx.microcanonical[n], "microcanonical_tpq": th.microcanonical[n],
+            "microcanonical_tpq_err": th.microcanonical_err[n],
+        }
+    row = {
+        "sites": L, "status": "ok", "basis": problem.basis.label, "basis_dimension": int(problem.basis.dim),
+        "subspace": ex.subspace, "subspace_dimension": ex.dim, "initial_state": problem.start.label,
+        "initial_weight_in_basis": captured, "energy_mean": ex.energy_mean, "energy_variance": ex.energy_variance,
+        "d_eff_exact": ex.d_eff, "d_eff_kpm": est.d_eff, "d_eff_kpm_low": est.d_eff_low,
+        "d_eff_kpm_high": est.d_eff_high, "d_eff_kpm_rel_error": _rel(est.d_eff, ex.d_eff),
+        "d_eff_plateau": est.plateau_d_eff, "d_eff_plateau_low": est.plateau_low, "d_eff_plateau_high": est.plateau_high,
+        "eta": est.eta, "narrow": est.narrow, "reliable": est.reliable, "warnings": list(est.warnings),
+        "assumption": est.assumption, "ldos_width": est.estimate.ldos_width, "kpm_resolution": est.estimate.resolution,
+        "ldos_ks": ldos_ks, "ldos_ks_damped": ldos_ks_d, "dos_ks": dos_ks, "dos_ks_damped": dos_ks_d,
+        "gap_degeneracy_N0": ex.gap_degeneracy, "n_degenerate_gaps": ex.n_degenerate_gaps,
+        "level_ratio": None if ex.level_ratio is None else ex.level_ratio.mean_r,
+        "level_ratio_err": None if ex.level_ratio is None else ex.level_ratio.stderr,
+        "level_ratio_n": None if ex.level_ratio is None else ex.level_ratio.n,
+        "level_block": ex.level_block, "beta_exact": tx.beta, "beta_tpq": th.beta, "beta_tpq_err": th.beta_err,
+        "micro_width": th.width, "observables": obs, "evolution_matvecs": stats.matvecs,
+        "seconds": time.perf_counter() - t0,
+    }
+    arrays = {
+        "times": Quantity(times, "1/J", "output times"),
+        "survival": Quantity(surv, "1", "|<psi|psi(t)>|^2"),
+        **{f"curve_{n}": Quantity(v, "1", f"<{n}(t)>") for n, v in curves.items()},
+        "ldos_energies": Quantity(est.ldos.energies, "J", "KPM grid"),
+        "ldos_kpm": Quantity(est.ldos.density, "1/J", "KPM local density of states (Jackson)"),
+        "dos_energies": Quantity(est.dos.energies, "J", "KPM grid"),
+        "dos_kpm": Quantity(est.dos.density, "1/J", "KPM density of states of the state's subspace"),
+        "dos_kpm_err": Quantity(est.dos.density_err, "1/J", "standard error over random vectors"),
+        "level_energies": Quantity(ex.quench.level_energies, "J", "distinct levels of the state's subspace"),
+        "level_weights": Quantity(ex.quench.level_weights, "1", "p_E = ||P_E psi||^2"),
+        "subspace_energies": Quantity(ex.energies, "J", "eigenvalues of the state's subspace"),
+    }
+    row["_arrays"] = arrays
+    return row
+
+
+def _fmt(x, digits=4):
+    if x is None or (isinstance(x, float) and not np.isfinite(x)):
+        return "-"
+    return f"{x:.{digits}g}"
+
+
+def _pct(x):
+    return "-" if x is None or not np.isfinite(x) else f"{100 * x:+.1f}%"
+
+
+def format_table(row: dict) -> str:
+    """The per-size table printed by the command (plain text)."""
+    if row["status"] != "ok":
+        return f"L = {row['sites']}: skipped ({row['reason']})"
+    lines = [
+        f"L = {row['sites']}: {row['basis']}",
+        f"  state: {row['initial_state']}; <H> = {row['energy_mean']:.6g}, Var H = {row['energy_variance']:.4g}; "
+        f"diagonalized {row['subspace_dimension']:,} (state's symmetric subspace)",
+    ]
+    if row["level_ratio"] is not None:
+        lines.append(f"  <r> = {row['level_ratio']:.4f} +- {row['level_ratio_err']:.4f} ({row['level_ratio_n']} ratios) in "
+                     f"{row['level_block']}; GOE {GOE_R:.4f}, Poisson {POISSON_R:.4f}")
+    lines.append(f"  N(0) = {row['gap_degeneracy_N0']} (largest gap degeneracy), {row['n_degenerate_gaps']} degenerate gaps")
+    head = f"  {'quantity':34s} {'exact':>12s} {'estimate':>24s} {'error':>10s}"
+    lines += [head, "  " + "-" * (len(head) - 2)]
+
+    def add(label, exact, est, err):
+        lines.append(f"  {label:34s} {exact:>12s} {est:>24s} {err:>10s}")
+
+    add("d_eff (KPM)", _fmt(row["d_eff_exact"]),
+        f"{_fmt(row['d_eff_kpm'])} [{_fmt(row['d_eff_kpm_low'], 3)}, {_fmt(row['d_eff_kpm_high'], 3)}]",
+        _pct(row["d_eff_kpm_rel_error"]))
+    if row["d_eff_plateau"] is not None:
+        add("d_eff (survival plateau)", _fmt(row["d_eff_exact"]),
+            f"{_fmt(row['d_eff_plateau'])} [{_fmt(row['d_eff_plateau_low'], 3)}, {_fmt(row['d_eff_plateau_high'], 3)}]",
+            _pct(_rel(row["d_eff_plateau"], row["d_eff_exact"])))
+    add("LDOS KS distance (damped)", "-", f"{row['ldos_ks']:.3g} ({row['ldos_ks_damped']:.1g})", "")
+    add("DOS KS distance (damped)", "-", f"{row['dos_ks']:.3g} ({row['dos_ks_damped']:.1g})", "")
+    add("beta at <H>", _fmt(row["beta_exact"]), f"{_fmt(row['beta_tpq'])} +- {row['beta_tpq_err']:.1g}",
+        _pct(_rel(row["beta_tpq"], row["beta_exact"])))
+    for n, o in row["observables"].items():
+        add(f"<{n}>_inf (curve window)", _fmt(o["equilibrium_exact"]),
+            f"{_fmt(o['equilibrium_curve'])} +- {o['equilibrium_curve_err']:.1g}",
+            f"{o['equilibrium_curve'] - o['equilibrium_exact']:+.1e}")
+        add(f"sigma^2 {n} (curve window)", _fmt(o["variance_exact"], 3), _fmt(o["variance_curve"], 3),
+            _pct(_rel(o["variance_curve"], o["variance_exact"])))
+        add(f"sigma^2/bound {n}", _fmt(o["variance_over_bound"], 3), f"bound {_fmt(o['bound'], 3)}",
+            "holds" if o["bound_holds"] else "VIOLATED")
+        add(f"canonical {n}", _fmt(o["canonical_exact"]),
+            f"{_fmt(o['canonical_tpq'])} +- {o['canonical_tpq_err']:.1g}",
+            f"{o['canonical_tpq'] - o['canonical_exact']:+.1e}")
+        add(f"microcanonical {n}", _fmt(o["microcanonical_exact"]),
+            f"{_fmt(o['microcanonical_tpq'])} +- {o['microcanonical_tpq_err']:.1g}",
+            f"{o['microcanonical_tpq'] - o['microcanonical_exact']:+.1e}")
+    for w in row["warnings"]:
+        lines.append(f"  warning: {w}")
+    lines.append(f"  ({row['seconds']:.1f} s)")
+    return "\n".join(lines)
+
+
+def _save(folder: Path, scenario, rows: list, options: CrosscheckOptions, final: bool) -> dict:
+    text = scenario_to_toml(scenario)
+    clean = [{k: v for k, v in r.items() if k != "_arrays"} for r in rows]
+    summary = {
+        "title": scenario.title, "command": "crosscheck", "complete": final,
+        "options": {"n_moments": options.n_moments, "n_vectors": options.n_vectors, "seed": options.seed,
+                    "max_dim": options.max_dim},
+        "sizes": clean,
+        "references": {
+            "bound": "P. Reimann, PRL 101, 190403 (2008); A. J. Short, NJP 13, 053009 (2011); "
+                     "A. J. Short & T. C. Farrelly, NJP 14, 013063 (2012)",
+            "kpm": "A. Weisse, G. Wellein, A. Alvermann & H. Fehske, Rev. Mod. Phys. 78, 275 (2006)",
+            "d_eff estimate": "random-matrix reasoning, F. M. Izrailev, Phys. Rep. 196, 299 (1990)",
+            "tpq": "S. Sugiura & A. Shimizu, PRL 108, 240401 (2012); PRL 111, 010401 (2013)",
+            "level ratio": "V. Oganesyan & D. A. Huse, PRB 75, 155111 (2007); Y. Y. Atas et al., PRL 110, 084101 (2013)",
+        },
+    }
+    write_summary(folder / "summary.json", summary)
+    tree = {}
+    for r, c in zip(rows, clean):
+        if r["status"] != "ok":
+            continue
+        g = {k: v for k, v in r["_arrays"].items()}
+        g["numbers"] = {k: v for k, v in c.items() if isinstance(v, (int, float, bool, np.floating)) and v is not None}
+        g["observables"] = {n: dict(o) for n, o in c["observables"].items()}
+        tree[f"L{r['sites']}"] = g
+    attrs = {"largeq_version": __version__, "scenario_toml": text, "title": scenario.title,
+             "conventions": spin_conventions(), "versions": package_versions(), "machine": run_metadata(),
+             "options": summary["options"], "complete": final, "references": summary["references"]}
+    write_results(folder / "results.h5", tree or {"empty": None}, attrs=attrs)
+    return summary
+
+
+def _plots_and_report(folder: Path, scenario, rows: list) -> None:
+    ok = [r for r in rows if r["status"] == "ok"]
+    if not ok:
+        return
+    sizes = [r["sites"] for r in ok]
+    series = {
+        "d_eff exact": ([r["d_eff_exact"] for r in ok], None),
+        "d_eff KPM estimate": ([r["d_eff_kpm"] for r in ok],
+                               [0.5 * (r["d_eff_kpm_high"] - r["d_eff_kpm_low"]) for r in ok]),
+        "d_eff survival plateau": ([r["d_eff_plateau"] if r["d_eff_plateau"] is not None else np.nan for r in ok], None),
+    }
+    first = next(iter(ok[0]["observables"]))
+    series[f"σ² {first} exact"] = ([r["observables"][first]["variance_exact"] for r in ok], None)
+    series[f"σ² {first} curve"] = ([r["observables"][first]["variance_curve"] for r in ok], None)
+    plots.plot_versus_size(folder / "crosscheck.png", sizes, series, logy=True, ylabel="d_eff, σ²",
+                           title="estimates against exact diagonalization")
+    sections = [html.Section(
+        "Estimates against exact values", images=["crosscheck.png"],
+        paragraphs=["d_eff: KPM estimate (LDOS of the state, DOS of its symmetric subspace; "
+                    + ok[0]["assumption"] + ")",
+                    "KS distances: sup |F_KPM - F_exact| of the normalised counting functions."])]
+    for r in ok:
+        table = [
+            ("d_eff exact", html.format_number(r["d_eff_exact"]), ""),
+            ("d_eff KPM", html.format_number(r["d_eff_kpm"]),
+             f"range {html.format_number(r['d_eff_kpm_low'])} .. {html.format_number(r['d_eff_kpm_high'])}; "
+             f"error {_pct(r['d_eff_kpm_rel_error'])}"),
+            ("d_eff survival plateau", html.format_number(r["d_eff_plateau"]) if r["d_eff_plateau"] else "-", ""),
+            ("<r>", html.format_value_error(r["level_ratio"], r["level_ratio_err"]) if r["level_ratio"] is not None else "-",
+             r["level_block"]),
+            ("N(0)", str(r["gap_degeneracy_N0"]), ""),
+            ("LDOS / DOS KS distance", f"{r['ldos_ks']:.3g} / {r['dos_ks']:.3g}", ""),
+        ]
+        for n, o in r["observables"].items():
+            table += [
+                (f"<{n}>_inf exact / curve", html.format_number(o["equilibrium_exact"]),
+                 f"curve {html.format_number(o['equilibrium_curve'])} ± {html.format_number(o['equilibrium_curve_err'])}"),
+                (f"σ² {n} exact / curve", html.format_number(o["variance_exact"]),
+                 f"curve {html.format_number(o['variance_curve'])}; σ²/bound {html.format_number(o['variance_over_bound'])}"),
+                (f"canonical {n} exact / TPQ", html.format_number(o["canonical_exact"]),
+                 f"TPQ {html.format_number(o['canonical_tpq'])} ± {html.format_number(o['canonical_tpq_err'])}"),
+            ]
+        sections.append(html.Section(f"L = {r['sites']}", table=table,
+                                     paragraphs=[r["subspace"]] + [f"warning: {w}" for w in r["warnings"]]))
+    skipped = [r for r in rows if r["status"] != "ok"]
+    if skipped:
+        sections.append(html.Section("Skipped sizes", paragraphs=[f"L = {r['sites']}: {r['reason']}" for r in skipped]))
+    html.write_report(folder / "report.html", title=scenario.title or "cross-check", sections=sections,
+                      subtitle=f"largeq {__version__}: cross-check of estimators against exact diagonalization")
+
+
+def run_crosscheck(scenario, sizes, folder=None, options: CrosscheckOptions | None = None, *, echo=print):
+    """Cross-check ``scenario`` at each size; returns (folder, summary). Saves after every size."""
+    options = options or CrosscheckOptions()
+    sizes = [int(s) for s in sizes]
+    if not sizes:
+        raise ValueError("give at least one size")
+    for s in sizes:
+        scenario.with_length(s)  # validate every size before any work (raises ScenarioError)
+    out = make_run_folder(folder, "crosscheck")
+    atomic_write_text(out / "scenario.toml", scenario_to_toml(scenario))
+    rows = []
+    bar = progress_bar(len(sizes), "crosscheck", enabled=options.progress)
+    summary = None
+    for s in sizes:
+        row = crosscheck_size(scenario, s, options)
+        rows.append(row)
+        if echo is not None:
+            echo(format_table(row))
+        summary = _save(out, scenario, rows, options, final=False)
+        bar.update(1)
+    bar.close()
+    summary = _save(out, scenario, rows, options, final=True)
+    _plots_and_report(out, scenario, rows)
+    return out, summary
+
+
+# ------------------------------------------------------------------------------------------------ command
+def cmd_crosscheck(args) -> int:
+    from .cli import UsageError, resolve_scenario
+
+    scenario = resolve_scenario(args.scenario, args.sites)
+    sizes = args.sizes or [scenario.n_sites]
+    try:
+        options = CrosscheckOptions(args.moments, args.vectors, args.seed, args.max_dim, args.progress)
+    except ValueError as exc:
+        raise UsageError(str(exc)) from None
+    folder, summary = run_crosscheck(scenario, sizes, args.out, options)
+    if not any(r["status"] == "ok" for r in summary["sizes"]):
+        raise UsageError("no size fitted the dense limit; choose smaller --sizes or raise --max-dim")
+    print(f"results: {folder}/ (results.h5, summary.json, crosscheck.png, report.html)")
+    return 0
+
+
+def register(subparsers) -> None:
+    from .cli import add_scenario_arguments
+
+    p = subparsers.add_parser("crosscheck", help="check the d_eff, equilibrium, fluctuation and thermal estimators "
+                                                 "against exact diagonalization at small sizes")
+    add_scenario_arguments(p)
+    p.add_argument("--sizes", type=int, nargs="+", default=None, metavar="L",
+                   help="chain lengths to check (default: the scenario's)")
+    p.add_argument("--out", default=None, metavar="FOLDER", help="run folder (default: runs/crosscheck-<timestamp>)")
+    p.add_argument("--moments", type=int, default=256, metavar="N", help="KPM moments (default 256)")
+    p.add_argument("--vectors", type=int, default=20, metavar="R",
+                   help="random vectors for the DOS trace and thermal averages (default 20)")
+    p.add_argument("--seed", type=int, default=20260202, metavar="S", help="seed of all random draws")
+    p.add_argument("--max-dim", type=int, default=13000, metavar="D",
+                   help="largest dense diagonalization (default 13000)")
+    g = p.add_mutually_exclusive_group()
+    g.add_argument("--progress", dest="progress", action="store_true", default=None, help="always show progress")
+    g.add_argument("--no-progress", dest="progress", action="store_false", help="never show progress")
+    p.set_defaults(func=cmd_crosscheck)
