@@ -72,16 +72,18 @@ def _block_setup(hi, sector, offset, lo_up, cd_zhi, cd_ptr, cd_vptr, g_xh, g_zhi
 
 
 @njit(parallel=True, cache=True)
-def fused_kernel(sector, offset, lo_up, lo_start,
+def fused_kernel(sector, n_lo, offset, lo_up, lo_start,
                  diag_lo, diag_hi, cd_zhi, cd_ptr, cd_vptr, cd_pat, cd_val,
                  lo_ptr, lo_col, lo_val,
                  hi_ptr, hi_src, hi_val,
-                 g_xh, g_zhi, g_ptr, g_vptr, g_pat, g_rank, g_dpop, g_val,
+                 g_xh, g_zhi, g_ptr, g_vptr, seg_ptr, seg_k, seg_rank, seg_pat, g_val,
                  x, y, alpha, beta, gamma):
     """y <- alpha * (A x) + beta * x + gamma * y  (x and y distinct, same basis)."""
     n_hi_states = offset.shape[0]
     n_cd = cd_ptr.shape[0] - 1
     n_g = g_xh.shape[0]
+    n_classes = lo_start.shape[0] - 1
+    nd = 2 * n_lo + 1
     n_chunks = min(n_hi_states, _CHUNKS)
     for ch in prange(n_chunks):
         cd_base = np.empty(n_cd, np.int64)
@@ -106,17 +108,20 @@ def fused_kernel(sector, offset, lo_up, lo_start,
                 acc = d * x[off + k]
                 for e in range(lo_ptr[pos], lo_ptr[pos + 1]):
                     acc += lo_val[e] * x[off + lo_col[e]]
-                for g in range(n_g):
-                    so = g_so[g]
-                    if so < 0:
-                        continue
-                    if sector and g_dpop[g, pos] != g_d[g]:
-                        continue
-                    acc += g_val[g_base[g] + g_pat[g, pos]] * x[so + g_rank[g, pos]]
                 if gamma == 0:
                     y[off + k] = beta * x[off + k] + alpha * acc
                 else:
                     y[off + k] = gamma * y[off + k] + beta * x[off + k] + alpha * acc
+            for g in range(n_g):
+                so = g_so[g]
+                if so < 0:
+                    continue
+                q = (g * n_classes + n) * nd + g_d[g] + n_lo
+                if q < (g * n_classes + n) * nd or q >= (g * n_classes + n + 1) * nd:
+                    continue
+                gb = g_base[g]
+                for e in range(seg_ptr[q], seg_ptr[q + 1]):
+                    y[off + seg_k[e]] += alpha * g_val[gb + seg_pat[e]] * x[so + seg_rank[e]]
             for e in range(hi_ptr[hi], hi_ptr[hi + 1]):
                 so = offset[hi_src[e]]
                 c = alpha * hi_val[e]
@@ -125,16 +130,18 @@ def fused_kernel(sector, offset, lo_up, lo_start,
 
 
 @njit(parallel=True, cache=True)
-def expect_kernel(sector, offset, lo_up, lo_start,
+def expect_kernel(sector, n_lo, offset, lo_up, lo_start,
                   diag_lo, diag_hi, cd_zhi, cd_ptr, cd_vptr, cd_pat, cd_val,
                   lo_ptr, lo_col, lo_val,
                   hi_ptr, hi_src, hi_val,
-                  g_xh, g_zhi, g_ptr, g_vptr, g_pat, g_rank, g_dpop, g_val,
+                  g_xh, g_zhi, g_ptr, g_vptr, seg_ptr, seg_k, seg_rank, seg_pat, g_val,
                   x, partial):
     """partial[hi] <- sum over block hi of conj(x_b) (A x)_b; the caller sums ``partial``."""
     n_hi_states = offset.shape[0]
     n_cd = cd_ptr.shape[0] - 1
     n_g = g_xh.shape[0]
+    n_classes = lo_start.shape[0] - 1
+    nd = 2 * n_lo + 1
     n_chunks = min(n_hi_states, _CHUNKS)
     for ch in prange(n_chunks):
         cd_base = np.empty(n_cd, np.int64)
@@ -160,14 +167,17 @@ def expect_kernel(sector, offset, lo_up, lo_start,
                 acc = d * x[off + k]
                 for e in range(lo_ptr[pos], lo_ptr[pos + 1]):
                     acc += lo_val[e] * x[off + lo_col[e]]
-                for g in range(n_g):
-                    so = g_so[g]
-                    if so < 0:
-                        continue
-                    if sector and g_dpop[g, pos] != g_d[g]:
-                        continue
-                    acc += g_val[g_base[g] + g_pat[g, pos]] * x[so + g_rank[g, pos]]
                 tot += np.conj(x[off + k]) * acc
+            for g in range(n_g):
+                so = g_so[g]
+                if so < 0:
+                    continue
+                q = (g * n_classes + n) * nd + g_d[g] + n_lo
+                if q < (g * n_classes + n) * nd or q >= (g * n_classes + n + 1) * nd:
+                    continue
+                gb = g_base[g]
+                for e in range(seg_ptr[q], seg_ptr[q + 1]):
+                    tot += np.conj(x[off + seg_k[e]]) * g_val[gb + seg_pat[e]] * x[so + seg_rank[e]]
             for e in range(hi_ptr[hi], hi_ptr[hi + 1]):
                 so = offset[hi_src[e]]
                 s = 0j

@@ -158,7 +158,7 @@ class PauliOperator(LinearOperator):
                             np.array(pats, np.int8).reshape(len(pats), los.size),
                             cast(np.concatenate(vtab) if vtab else np.zeros(0)))
         # off-diagonal groups across the cut
-        gxh, gzhi, gptr, gvptr, gpat, grank, gdpop, gval = [], [], [0], [0], [], [], [], []
+        gxh, gzhi, gptr, gvptr, gpat, grank, gdpop, gval, gpat_width = [], [], [0], [0], [], [], [], [], []
         pc_lo = np.bitwise_count(los).astype(np.int64)
         for x, zs, cs in cross:
             xl = x & lo_mask
@@ -169,12 +169,34 @@ class PauliOperator(LinearOperator):
             grank.append(b.lo_rank[src_lo])
             gdpop.append(np.bitwise_count(src_lo).astype(np.int64) - pc_lo)
             gval.append(_pattern_values(cs)); gvptr.append(gvptr[-1] + gval[-1].size)
+            gpat_width.append(zs.size)
         ng = len(cross)
+        # entries of each group, per low class n and per change D of the low part's up spins,
+        # kept only where the term can be non-zero: a block (class n) whose source block has
+        # n + D low up spins loops over exactly its valid entries, without tests
+        n_classes = b.lo_start.size - 1
+        nd = 2 * n_lo + 1
+        seg_ptr = np.zeros(ng * n_classes * nd + 1, np.int64)
+        seg_k, seg_rank, seg_pat = [], [], []
+        count = 0
+        for g in range(ng):
+            vals = gval[g].reshape(-1, 1 << gpat_width[g]) if gval else None
+            live = np.any(np.abs(vals) > 0, axis=0)  # lo patterns that are non-zero for some hi pattern
+            for n in range(n_classes):
+                s0, s1 = b.lo_start[n], b.lo_start[n + 1]
+                d = gdpop[g][s0:s1] if b.is_sector else np.zeros(s1 - s0, np.int64)
+                pats = gpat[g][s0:s1]
+                keep = live[pats]
+                for dv in range(-n_lo, n_lo + 1):
+                    sel = np.nonzero(keep & (d == dv))[0]
+                    seg_k.append(sel); seg_rank.append(grank[g][s0:s1][sel]); seg_pat.append(pats[sel])
+                    count += sel.size
+                    seg_ptr[(g * n_classes + n) * nd + dv + n_lo + 1] = count
         self._cross = (np.array(gxh, np.int64), np.array(gzhi, np.int64), np.array(gptr, np.int64),
-                       np.array(gvptr[:-1], np.int64),
-                       np.array(gpat, np.int8).reshape(ng, los.size),
-                       np.array(grank, np.int32).reshape(ng, los.size),
-                       np.array(gdpop, np.int8).reshape(ng, los.size),
+                       np.array(gvptr[:-1], np.int64), seg_ptr,
+                       np.concatenate(seg_k).astype(np.int32) if seg_k else np.zeros(0, np.int32),
+                       np.concatenate(seg_rank).astype(np.int32) if seg_rank else np.zeros(0, np.int32),
+                       np.concatenate(seg_pat).astype(np.int8) if seg_pat else np.zeros(0, np.int8),
                        cast(np.concatenate(gval) if gval else np.zeros(0)))
         self.counts = {
             "low_groups": len(lo_groups),
@@ -198,7 +220,7 @@ class PauliOperator(LinearOperator):
 
     def _args(self):
         b = self.basis
-        return (b.is_sector, b.block_offset, b.block_lo_up, b.lo_start,
+        return (b.is_sector, b.n_lo, b.block_offset, b.block_lo_up, b.lo_start,
                 self._diag[0], self._diag[1], *self._cross_diag,
                 *self._lo, *self._hi, *self._cross)
 
