@@ -38,14 +38,12 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.linalg
 import scipy.optimize
-import scipy.sparse as sp
 
-from .analysis.equilibrium import (GOE_R, POISSON_R, Bound, DeffEstimate, SpacingRatio, amplitude_eta,
+from .analysis.equilibrium import (GOE_R, POISSON_R, DeffEstimate, SpacingRatio, amplitude_eta,
                                    deff_from_densities, fluctuation_bound, survival_plateau)
 from .engines.bounds import spectral_bounds
 from .engines.exact import ExactQuench, diagonalize, quench_exact
-from .engines.kpm import (chebyshev_moments, chebyshev_scale, kernel_factors, kernel_resolution,
-                          local_density, reconstruct_cumulative, reconstruct_density)
+from .engines.kpm import (chebyshev_moments, chebyshev_scale, kernel_factors, local_density, reconstruct_cumulative, reconstruct_density)
 from .engines.typical import canonical_averages, microcanonical_average, random_state, solve_beta
 from .symmetry_blocks import (StateSubspace, SymmetryGroup, resolved_level_ratio, state_subspace,
                               symmetry_blocks, symmetry_group)
@@ -64,12 +62,22 @@ __all__ = [
     "ExactThermal",
     "exact_thermal_values",
     "BOUNDS_SEED",
+    "default_bounds",
 ]
 
 #: Fixed seed of the Lanczos start vector for spectral bounds (bounds are reproducible).
 BOUNDS_SEED = 20260101
 #: Above this many (group elements x basis states) the symmetry permutations are not built.
 MAX_PERMUTATION_ENTRIES = 200_000_000
+
+
+def default_bounds(op):
+    """Spectral bounds for KPM and propagation: 150 Lanczos steps (fixed seed), 2 % padding.
+
+    More steps than the engine default: at small dimensions with many symmetry sectors a short run can
+    miss an extreme sector, and the Chebyshev propagator then stops on norm drift.
+    """
+    return spectral_bounds(op, steps=min(150, op.shape[0]), margin=0.02, rng=np.random.default_rng(BOUNDS_SEED))
 
 
 class DenseLimitError(ValueError):
@@ -365,6 +373,31 @@ def _projected_dos(op, elements, chars, trace, n_moments, n_vectors, rng, bounds
     )
 
 
+def _paired_fraction(group, els, chars, keys, trace) -> float:
+    """Share of Tr P in momenta k != 0, L/2 whose levels pair with -k (reflection in H, not in G_psi).
+
+    Tr(P P_0) and Tr(P P_{L/2}) from fixed points of g T^j; 0 when no pairing applies.
+    """
+    if not ("translation" in group.generators and "reflection" in group.generators):
+        return 0.0
+    if any(k[1] for k in keys):
+        return 0.0  # the state's subspace holds one combination of k and -k per pair
+    L = group.n_sites
+    shifts = {k[0]: p for k, p in group.elements if k[1] == 0 and k[2] == 0}
+    idx = np.arange(els[0].size)
+    t0 = tpi = 0.0
+    for p, c in zip(els, chars):
+        for j, tj in shifts.items():
+            fixed = float(np.count_nonzero(p[tj] == idx))
+            val = float(np.real(np.conj(c))) * fixed
+            t0 += val
+            tpi += val * (-1.0) ** j
+    n = len(els) * L
+    t0 /= n
+    tpi = tpi / n if L % 2 == 0 else 0.0
+    return float(max(0.0, (trace - t0 - tpi) / trace))
+
+
 def integrability_warning(scenario) -> str | None:
     """A sentence when the scenario is a known integrable or localised model, else None.
 
@@ -403,7 +436,11 @@ class DeffResult:
         Range from the DOS error bars (stochastic trace); it does not include the error of the
         random-matrix assumption itself.
     eta : float
-        3 real amplitudes, 2 complex, 3 - 4w(1 - w) in between (``amplitude_eta``).
+        3 real amplitudes, 2 complex, 3 - 4w(1 - w) in between (``amplitude_eta``), plus ``paired_fraction``.
+    paired_fraction : float
+        Share of the subspace in momenta k != 0, L/2 whose levels are exactly degenerate with -k
+        (reflection-symmetric ring, state not reflection symmetric): such pairs are grouped into one
+        eigenspace, E p_E^2 = 2 mu^2 (eta + 1), so eta -> eta + paired_fraction.
     narrow : bool
         LDOS width < 3 x KPM resolution: estimate unreliable.
     reliable : bool
@@ -431,6 +468,7 @@ class DeffResult:
     d_eff_low: float
     d_eff_high: float
     eta: float
+    paired_fraction: float
     narrow: bool
     reliable: bool
     warnings: tuple
@@ -448,7 +486,7 @@ class DeffResult:
 
     def summary(self) -> dict:
         return {
-            "d_eff": self.d_eff, "d_eff_low": self.d_eff_low, "d_eff_high": self.d_eff_high, "eta": self.eta,
+            "d_eff": self.d_eff, "d_eff_low": self.d_eff_low, "d_eff_high": self.d_eff_high, "eta": self.eta, "paired_fraction": self.paired_fraction,
             "narrow": self.narrow, "reliable": self.reliable, "warnings": list(self.warnings),
             "assumption": self.assumption, "subspace_dimension": self.subspace_dim, "subspace": self.subspace,
             "ldos_width": self.estimate.ldos_width, "resolution": self.estimate.resolution,
@@ -500,9 +538,10 @@ def estimate_deff(problem, *, n_moments: int = 256, n_vectors: int = 20, rng: np
     psi = _initial(problem, psi)
     op = problem.operator
     if bounds is None:
-        bounds = spectral_bounds(op, rng=np.random.default_rng(BOUNDS_SEED))
+        bounds = default_bounds(op)
     warnings = []
     elements = chars = None
+    paired = 0.0
     trace = float(problem.basis.dim)
     sub_desc = f"whole basis ({problem.basis.label})"
     real_amplitudes = bool(problem.symmetries.get("real", False))
@@ -513,14 +552,15 @@ def estimate_deff(problem, *, n_moments: int = 256, n_vectors: int = 20, rng: np
     else:
         sub = state_subspace(problem, psi, group=grp)
         if sub.n_elements > 1:
-            els, chs = [], []
-            for _, p in grp.elements:
+            els, chs, keys = [], [], []
+            for key, p in grp.elements:
                 gpsi = np.zeros_like(psi)
                 gpsi[p] = psi
                 lam = np.vdot(psi, gpsi)
                 if abs(abs(lam) - 1.0) < 1e-9:
                     els.append(p)
                     chs.append(lam / abs(lam))
+                    keys.append(key)
             if resolve_symmetries:
                 elements, chars = els, np.asarray(chs)
                 fixed = np.array([np.count_nonzero(p == np.arange(p.size)) for p in els], dtype=float)
@@ -528,10 +568,16 @@ def estimate_deff(problem, *, n_moments: int = 256, n_vectors: int = 20, rng: np
                 sub_desc = sub.description
                 if np.any(np.abs(chars.imag) > 1e-12):
                     real_amplitudes = False  # complex characters: eigenvectors in the block are complex
+                paired = _paired_fraction(grp, els, chars, keys, trace)
             else:
                 warnings.append(f"the state lives in a subspace of dimension {sub.dim:,} of {problem.basis.dim:,}; "
                                 "the DOS of the whole basis overestimates d_eff")
-    eta = amplitude_eta(psi, real_amplitudes)
+    if grp is not None and sub.n_elements == 1 and resolve_symmetries:
+        paired = _paired_fraction(grp, [grp.elements[0][1]], np.ones(1), [grp.elements[0][0]], trace)
+    eta0 = amplitude_eta(psi, real_amplitudes)
+    # levels of momenta k and -k (k != 0, L/2) are exactly degenerate when H has reflection symmetry and the
+    # state does not: an eigenspace of multiplicity 2 has E p_E^2 = 2 mu^2 (eta + 1), i.e. eta + 1 per state
+    eta = eta0 + paired
     ldos = local_density(op, psi, n_moments, bounds)
     dos = _projected_dos(op, elements, chars, trace, n_moments, n_vectors, rng, bounds, 2 * n_moments)
     res = float(np.interp(ldos.mean_exact, ldos.energies, ldos.resolution))
@@ -555,7 +601,7 @@ def estimate_deff(problem, *, n_moments: int = 256, n_vectors: int = 20, rng: np
         pl = (1.0 / p.mean if p.mean > 0 else float("inf"), 1.0 / hi_ipr,
               1.0 / lo_ipr if lo_ipr > 0 else float("inf"), win)
     return DeffResult(
-        d_eff=est.d_eff, d_eff_low=est.d_eff_low, d_eff_high=est.d_eff_high, eta=eta, narrow=est.narrow,
+        d_eff=est.d_eff, d_eff_low=est.d_eff_low, d_eff_high=est.d_eff_high, eta=eta, paired_fraction=paired, narrow=est.narrow,
         reliable=not warnings, warnings=tuple(warnings), assumption=est.assumption, estimate=est, ldos=ldos,
         dos=dos, subspace_dim=trace, subspace=sub_desc, plateau_d_eff=pl[0], plateau_low=pl[1],
         plateau_high=pl[2], plateau_window=pl[3], seconds=time.perf_counter() - t0,
@@ -627,7 +673,7 @@ def thermal_values(problem, energy: float, *, n_vectors: int = 10, rng: np.rando
     t0 = time.perf_counter()
     op = problem.operator
     if bounds is None:
-        bounds = spectral_bounds(op, rng=np.random.default_rng(BOUNDS_SEED))
+        bounds = default_bounds(op)
     obs = {n: problem.observable_operator(n) for n in problem.observables}
     a, _ = chebyshev_scale(bounds)
     child = rng.spawn(2)

@@ -24,6 +24,7 @@ what the main job's equilibrium values are compared against), ``thermal.png``, `
 from __future__ import annotations
 
 import dataclasses
+import textwrap
 import time
 from dataclasses import dataclass
 from pathlib import Path
@@ -32,7 +33,7 @@ import numpy as np
 import scipy.interpolate
 
 from . import __version__
-from .assemble import Problem, build_problem, spin_conventions
+from .assemble import build_problem, spin_conventions
 from .engines.bounds import spectral_bounds
 from .engines.linalg import apply_into
 from .engines.typical import canonical_averages, microcanonical_average, solve_beta
@@ -421,7 +422,7 @@ def _plot(path, canon, beta, title, energy):
     ax1.set_ylabel("canonical ⟨A⟩")
     ax2.set_ylabel("energy (J)")
     ax2.set_xlabel("temperature T (J)" if use_t else "inverse temperature β (1/J)")
-    ax1.set_title(title)
+    ax1.set_title(textwrap.fill(title, 72))
     return plots._save(fig, path)
 
 

@@ -259,8 +259,8 @@ def test_kpm_moments_match(jb, case):
 
 # ------------------------------------------------------------------------------ complex64
 def test_complex64_opt_in_accuracy(jb):
-    """float32 arithmetic: products to ~1e-7, a 60-product evolution to ~1e-5 (checked at 1e-5 / 1e-4)."""
-    import jax.numpy as jnp
+    """float32 arithmetic: ~1e-7 measured for products, evolution and moments; checked loosely
+    (1e-5 / 1e-4) since float32 rounding (6e-8 per operation) accumulates over >40 products."""
     from largeq.engines.bounds import spectral_bounds
 
     H, basis = CASES["sector-complex"]()
@@ -288,7 +288,6 @@ def test_complex64_opt_in_accuracy(jb):
     assert np.max(np.abs(mu32 - mu64)) < 1e-4 * mu64[0]
     with pytest.raises(ValueError, match="complex128"):
         jb.JaxPauliOperator(H, basis, dtype=np.float16)
-    assert isinstance(jnp.zeros(1).dtype, np.dtype)
 
 
 # ------------------------------------------------------------------------------ selection
