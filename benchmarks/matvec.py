@@ -44,7 +44,7 @@ def run(L: int, repeats: int, bandwidth: float) -> dict:
     csr_c = median_time(lambda: m @ xc, max(3, repeats // 2))
     dev = float(np.max(np.abs(m @ xr - yr)))
     mem_csr = csr_bytes(m)
-    del m
+    m = None  # free the CSR matrix before the next size
     gc.collect()
     touched_r = 2 * xr.nbytes  # one input read + one output written
     touched_c = 2 * xc.nbytes
