@@ -175,7 +175,7 @@ def test_strongly_disordered_heisenberg_is_poisson():
 
 # ------------------------------------------------------------------------------------------ d_eff estimate
 def _deff_ratio(pr, n_moments=256, n_vectors=20, seed=1):
-    ex = exact_equilibration(pr, level_statistics=False)
+    ex = exact_equilibration(pr, level_statistics=False, observables=[])
     est = estimate_deff(pr, n_moments=n_moments, n_vectors=n_vectors, rng=np.random.default_rng(seed))
     return est.d_eff / ex.d_eff, est, ex
 

@@ -65,7 +65,8 @@ def _hash_entry(h: "hashlib._Hash", name: str, kind: str, arr: np.ndarray) -> No
         h.update("\0".join(str(v) for v in arr.ravel()).encode("utf-8"))
     else:
         # memoryview of a C-contiguous array: no copy (non-contiguous input is copied once)
-        h.update(memoryview(np.ascontiguousarray(arr)).cast("B"))
+        if arr.size:  # a zero-size view cannot be cast to bytes (and holds none)
+            h.update(memoryview(np.ascontiguousarray(arr)).cast("B"))
 
 
 def _as_entry(name: str, value: Any) -> tuple[str, np.ndarray]:
