@@ -490,3 +490,16 @@ def test_chebyshev_order_zero_and_tiny_x():
     assert order == 1 and bound <= 1e-10
     with pytest.raises(ValueError, match="m must be"):
         krylov_apriori_bound(0, 1.0, 1.0)
+
+
+def test_many_small_steps_do_not_trip_the_norm_check():
+    # regression: the norm check once compared against the initial norm, so round-off
+    # accumulated over ~100 steps at tol = 1e-10 raised a spurious "bounds" error
+    from largeq.assemble import build_problem
+    from largeq.cli import resolve_scenario
+
+    problem = build_problem(resolve_scenario("neel_j1j2", 10))
+    psi, _ = problem.initial_vector()
+    times = np.linspace(0.0, 40.0, 401)
+    stats = evolve(problem.operator, psi, times, tol=1e-10, block=1)
+    assert stats.steps == 400
