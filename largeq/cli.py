@@ -87,13 +87,28 @@ def _print_relax_summary(run) -> None:
     print(f"  L = {s['sites']}, {s['basis']['kind']} basis, dimension {s['basis']['dimension']:,}; "
           f"{s['method']} (tolerance {s['tolerance']:g}); {s['matvecs']} products in {s['wall_seconds']:.1f} s")
     print(f"  initial energy {s['initial_energy']:.6g}; energy drift {s['energy_drift']:.2g}; norm drift {s['norm_drift']:.2g}")
+    eq = s.get("equilibration", {})
+    if eq.get("d_eff") is not None:
+        lo, hi = eq["d_eff_range"]
+        rng = "" if lo == hi else f" [{lo:.3g}, {hi:.3g}]"
+        print(f"  effective dimension d_eff = {eq['d_eff']:.4g}{rng} ({eq['method']})")
+    elif eq.get("note"):
+        print(f"  effective dimension: {eq['note']}")
     for name, o in s["observables"].items():
         state = "settled" if o["settled"] else "NOT settled"
         print(f"  {name:18s} equilibrium {o['equilibrium']:+.5f} +- {o['equilibrium_err']:.1e}   "
               f"sigma^2 {o['temporal_variance']:.2e}   t_relax {o['relaxation_time']:.3g}   ({state})")
-        for key in ("d_eff", "bound"):
-            if key in o:
-                print(f"      {key}: {o[key]}")
+        extra = []
+        if "diagonal_ensemble" in o:
+            extra.append(f"diagonal ensemble {o['diagonal_ensemble']:+.5f}")
+        if o.get("bound") is not None:
+            extra.append(f"bound on sigma^2 {o['bound']:.3g}")
+        if o.get("canonical") is not None:
+            extra.append(f"canonical {o['canonical']:+.5f}")
+        if o.get("microcanonical") is not None:
+            extra.append(f"microcanonical {o['microcanonical']:+.5f}")
+        if extra:
+            print("      " + "; ".join(extra))
     print(f"  results: {run.folder}/ (results.h5, summary.json, report.html)")
 
 

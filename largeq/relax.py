@@ -22,6 +22,7 @@ from .analysis.relaxation import analyse_curve
 from .assemble import Problem, build_problem, spin_conventions
 from .engines.bounds import SpectralBounds, spectral_bounds
 from .engines.propagate import evolve
+from .equilibrium_summary import equilibration_report
 from .planner import available_bytes, check_fits, evolution_forecast, format_bytes
 from .progress import progress_bar
 from .reports import html, plots
@@ -51,12 +52,19 @@ class RelaxOptions:
         Output times sharing one Chebyshev expansion; None chooses from the memory available.
     memory_available : int or None
         Override of the available memory in bytes (for forecasts on another machine and tests).
+    equilibration : str
+        d_eff, bounds and thermal values: "auto" (exact where diagonalization fits, estimates at
+        moderate sizes, skipped beyond), "exact", "estimate" or "off".
+    seed : int
+        Seed of the random vectors used by the estimators (recorded in the results).
     """
 
     checkpoint_seconds: float | None = None
     progress: bool | None = None
     block: int | None = None
     memory_available: int | None = None
+    equilibration: str = "auto"
+    seed: int = 20261201
 
 
 @dataclass(frozen=True)
@@ -217,16 +225,20 @@ def _execute(problem: Problem, text: str, folder: Path, times, block, forecast, 
     wall = elapsed_before + time.perf_counter() - wall0
     stats = stats_holder.get("stats")
     matvecs = matvecs_before + (stats.matvecs if stats else 0)
-    summary = _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, matvecs, wall, captured)
+    summary = _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, matvecs, wall, captured,
+                      options)
     ckfile = folder / CHECKPOINT_NAME
     if ckfile.exists():
         ckfile.unlink()  # the run is complete and saved; the checkpoint's state vector is no longer needed
     return RelaxRun(folder, summary)
 
 
-def _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, matvecs, wall, captured) -> dict:
+def _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, matvecs, wall, captured,
+            options) -> dict:
     scenario = problem.scenario
     analyses = {n: analyse_curve(times, rec.values[n]) for n in rec.names}
+    eq = equilibration_report(problem, times, rec.survival, analyses, mode=options.equilibration,
+                              seed=options.seed, energy=float(rec.energy[0]))
     norm_drift = float(np.max(np.abs(rec.norm - 1.0)))
     energy_drift = float(np.max(np.abs(rec.energy - rec.energy[0])))
     obs_meta = {n: problem.observables[n] for n in rec.names}
@@ -292,7 +304,8 @@ def _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, m
         "wall_seconds": wall,
         "norm_drift": norm_drift,
         "energy_drift": energy_drift,
-        "seeds": {"bounds_lanczos": BOUNDS_SEED, **_seeds(scenario)},
+        "seeds": {"bounds_lanczos": BOUNDS_SEED, "estimators": options.seed, **_seeds(scenario)},
+        "equilibration": eq["summary"],
     }
     write_results(folder / "results.h5", tree, attrs=attrs)
     summary = {
@@ -318,12 +331,14 @@ def _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, m
                 "settled": a.settled,
                 "window": [a.window_start, a.window_end],
                 "verdict": a.verdict,
+                **eq["per_observable"][n],
             }
             for n, a in analyses.items()
         },
+        "equilibration": eq["summary"],
     }
     write_summary(folder / "summary.json", summary)
-    _plots_and_report(problem, folder, times, rec, analyses, summary)
+    _plots_and_report(problem, folder, times, rec, analyses, summary, eq["rows"])
     return summary
 
 
@@ -337,7 +352,7 @@ def _seeds(scenario) -> dict:
     return {f"field_{f.axis}": f.seed for f in scenario.fields if getattr(f, "seed", None) is not None}
 
 
-def _plots_and_report(problem, folder: Path, times, rec, analyses, summary) -> None:
+def _plots_and_report(problem, folder: Path, times, rec, analyses, summary, eq_rows) -> None:
     names = rec.names
     plots.plot_relaxation(
         folder / "relaxation.png", times, {n: rec.values[n] for n in names},
@@ -361,6 +376,9 @@ def _plots_and_report(problem, folder: Path, times, rec, analyses, summary) -> N
                      paragraphs=[f"{n}: {a.verdict}" for n, a in analyses.items()]),
         html.Section("Distance to equilibrium", images=["distance.png"],
                      table=[(f"{n}: σ²", html.format_number(a.variance), "") for n, a in analyses.items()]),
+        html.Section("Effective dimension, fluctuation bound, thermal values",
+                     table=eq_rows or [("equilibration analysis", summary["equilibration"]["method"],
+                                        summary["equilibration"].get("note", ""))]),
         html.Section("Survival probability", images=["survival.png"], table=[
             ("initial energy ⟨H⟩", html.format_number(summary["initial_energy"]), ""),
             ("energy drift", html.format_number(summary["energy_drift"]), ""),

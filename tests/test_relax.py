@@ -243,3 +243,17 @@ def test_cli_errors_are_one_line_without_traceback(tmp_path):
     assert "chain.sites" in r.stderr and "-4" in r.stderr and "Traceback" not in r.stderr
     r = subprocess.run([sys.executable, "-m", "largeq", "relax", "no_such_example"], capture_output=True, text=True)
     assert r.returncode == 2 and "built-in examples" in r.stderr and "Traceback" not in r.stderr
+
+
+def test_summary_carries_effective_dimension_bound_and_thermal_values(tmp_path):
+    # at L = 10 the exact engine runs: the bound (Reimann, PRL 101, 190403 (2008)) must hold for
+    # the exact infinite-time variance, and d_eff lies between 1 and the subspace dimension
+    run = run_relaxation(scenario(), tmp_path / "eq", RelaxOptions(progress=False))
+    eq = run.summary["equilibration"]
+    assert eq["method"] == "exact diagonalization"
+    assert 1.0 <= eq["d_eff"] <= eq["details"]["diagonalized_dimension"]
+    for name, o in run.summary["observables"].items():
+        assert o["bound_holds"] and o["exact_variance"] <= o["bound"] * (1 + 1e-10)
+        assert "canonical" in o and "microcanonical" in o
+    off = run_relaxation(scenario(), tmp_path / "off", RelaxOptions(progress=False, equilibration="off"))
+    assert off.summary["equilibration"]["method"] == "skipped"

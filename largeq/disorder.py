@@ -1,0 +1,206 @@
+"""Disorder averages: N realisations of a scenario with random fields, each with its own recorded seed.
+
+Seeds.  The realisation seeds are derived deterministically from the scenario's own seed (the preset's
+``seed`` or the random field's ``seed``) with ``numpy.random.SeedSequence(base).spawn(N)``; realisation k gets
+``spawn(N)[k].generate_state(1)[0]`` (a 32-bit integer, written into its scenario).  Asking for more
+realisations later keeps the first ones: SeedSequence children do not depend on N.
+
+Statistics.  For every number x_k over realisations k = 1..N: the mean, the standard error of the mean
+std(x, ddof=1) / sqrt(N) and the spread std(x, ddof=1) (sample-to-sample fluctuation); curves point by point.
+
+``run_disorder_relaxation`` runs ``largeq.relax.run_relaxation`` once per realisation (sub-folders
+``realization-000`` ...; a rerun skips realisations already finished) and writes the aggregate
+``results.h5``, ``summary.json``, ``relaxation.png`` and ``report.html`` in the parent folder.
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from . import __version__
+from .reports import html, plots
+from .reports.store import (Quantity, atomic_write_text, make_run_folder, package_versions, read_results,
+                            read_summary, run_metadata, write_results, write_summary)
+from .scenario import Scenario, ScenarioError, parse_scenario, scenario_to_dict, scenario_to_toml
+
+__all__ = ["is_disordered", "base_seed", "realization_seeds", "with_seed", "aggregate", "aggregate_curves",
+           "DisorderRun", "run_disorder_relaxation", "realization_folder"]
+
+
+def _random_fields(scenario: Scenario):
+    return [f for f in scenario.fields if f.pattern == "random"]
+
+
+def is_disordered(scenario: Scenario) -> bool:
+    """True when the Hamiltonian has a random field (the only random ingredient of a scenario)."""
+    return bool(_random_fields(scenario))
+
+
+def base_seed(scenario: Scenario) -> int:
+    """The scenario's recorded disorder seed (preset parameter ``seed`` or the first random field's)."""
+    if scenario.model is not None and "seed" in dict(scenario.model.params):
+        return int(scenario.model.param("seed"))
+    fields = _random_fields(scenario)
+    if not fields:
+        raise ScenarioError("field", None, "a random field (pattern = 'random') for disorder realisations",
+                            scenario.source)
+    return int(fields[0].seed)
+
+
+def realization_seeds(seed: int, n: int) -> list[int]:
+    """Seeds of realisations 0..n-1 derived from ``seed`` (SeedSequence spawn; prefix-stable in n)."""
+    if int(n) != n or n < 1:
+        raise ValueError(f"number of realisations must be an integer >= 1, got {n!r}")
+    return [int(c.generate_state(1, np.uint32)[0]) for c in np.random.SeedSequence(int(seed)).spawn(int(n))]
+
+
+def with_seed(scenario: Scenario, seed: int) -> Scenario:
+    """The same scenario with its disorder drawn from ``seed``.
+
+    A preset with a ``seed`` parameter gets it replaced; otherwise the single random field gets ``seed`` and
+    further random fields (other axes) get ``SeedSequence([seed, k])``-derived seeds (k = their order).
+    """
+    if not is_disordered(scenario):
+        raise ScenarioError("field", None, "a random field (pattern = 'random') for disorder realisations",
+                            scenario.source)
+    data = scenario_to_dict(scenario)
+    if scenario.model is not None and "seed" in data.get("model", {}):
+        data["model"]["seed"] = int(seed)
+    else:
+        for k, f in enumerate(_random_fields(scenario)):
+            s = int(seed) if k == 0 else int(np.random.SeedSequence([int(seed), k]).generate_state(1, np.uint32)[0])
+            data["field"][f.axis]["seed"] = s
+    return parse_scenario(data, source=scenario.source)
+
+
+def aggregate(values) -> dict:
+    """Mean, standard error of the mean, spread (sample std, ddof 1), min, max and count of finite values."""
+    v = np.asarray([x for x in values if x is not None], dtype=float)
+    v = v[np.isfinite(v)]
+    n = int(v.size)
+    if n == 0:
+        return {"mean": float("nan"), "stderr": float("nan"), "spread": float("nan"), "min": float("nan"),
+                "max": float("nan"), "n": 0}
+    spread = float(np.std(v, ddof=1)) if n > 1 else float("nan")
+    return {"mean": float(v.mean()), "stderr": spread / np.sqrt(n) if n > 1 else float("nan"), "spread": spread,
+            "min": float(v.min()), "max": float(v.max()), "n": n}
+
+
+def aggregate_curves(curves) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(mean, standard error, spread) point by point of equal-length curves (rows = realisations)."""
+    a = np.asarray(curves, dtype=float)
+    if a.ndim != 2 or a.shape[0] < 1:
+        raise ValueError(f"curves must be a 2-d array (realisations x times), got shape {a.shape}")
+    n = a.shape[0]
+    mean = a.mean(axis=0)
+    if n < 2:
+        nan = np.full(a.shape[1], np.nan)
+        return mean, nan, nan
+    spread = a.std(axis=0, ddof=1)
+    return mean, spread / np.sqrt(n), spread
+
+
+def realization_folder(folder, k: int) -> Path:
+    return Path(folder) / f"realization-{k:03d}"
+
+
+@dataclass(frozen=True)
+class DisorderRun:
+    folder: Path
+    summary: dict
+
+
+OBS_KEYS = ("equilibrium", "equilibrium_err", "temporal_variance", "relaxation_time")
+
+
+def run_disorder_relaxation(scenario: Scenario, n_realizations: int, folder=None, options=None, *,
+                            echo=None) -> DisorderRun:
+    """Relaxation of ``n_realizations`` disorder realisations and their average (see the module docstring).
+
+    Each realisation is a complete ``relax`` run folder; realisations already finished in ``folder``
+    (their ``summary.json`` exists and their recorded seed matches) are not run again.
+    """
+    from .relax import RelaxOptions, run_relaxation
+
+    options = RelaxOptions() if options is None else options
+    seed0 = base_seed(scenario)
+    seeds = realization_seeds(seed0, n_realizations)
+    out = make_run_folder(folder, "relax-disorder")
+    atomic_write_text(out / "scenario.toml", scenario_to_toml(scenario))
+    t0 = time.perf_counter()
+    summaries = []
+    for k, seed in enumerate(seeds):
+        sub = realization_folder(out, k)
+        sc = with_seed(scenario, seed)
+        if (sub / "summary.json").exists() and (sub / "results.h5").exists():
+            _, attrs = read_results(sub / "results.h5", quantities=False)
+            if attrs.get("scenario_toml") == scenario_to_toml(sc):
+                summaries.append(read_summary(sub / "summary.json"))
+                if echo:
+                    echo(f"  realisation {k} (seed {seed}): already done, kept")
+                continue
+        run = run_relaxation(sc, sub, options)
+        summaries.append(run.summary)
+        if echo:
+            echo(f"  realisation {k} (seed {seed}): {run.summary['wall_seconds']:.1f} s")
+    summary = _aggregate_relax(scenario, out, seeds, summaries, time.perf_counter() - t0)
+    return DisorderRun(out, summary)
+
+
+def _aggregate_relax(scenario, out: Path, seeds, summaries, wall) -> dict:
+    trees = [read_results(realization_folder(out, k) / "results.h5", quantities=False)[0] for k in range(len(seeds))]
+    times = np.asarray(trees[0]["curves"]["times"], dtype=float)
+    names = list(summaries[0]["observables"])
+    curves = {}
+    tree_curves = {"times": Quantity(times, "1/J", "output times")}
+    for n in names:
+        m, se, sp = aggregate_curves([np.real(t["curves"][n]) for t in trees])
+        curves[n] = (m, se, sp)
+        tree_curves[n] = Quantity(m, "1", f"disorder mean of <{n}(t)>")
+        tree_curves[f"{n}_stderr"] = Quantity(se, "1", "standard error of the mean over realisations")
+        tree_curves[f"{n}_spread"] = Quantity(sp, "1", "standard deviation between realisations")
+        tree_curves[f"{n}_realizations"] = Quantity(np.array([np.real(t["curves"][n]) for t in trees]), "1",
+                                                     "every realisation (rows)")
+    obs = {n: {key: aggregate([s["observables"][n][key] for s in summaries]) for key in OBS_KEYS} for n in names}
+    cost = {"wall_seconds": aggregate([s["wall_seconds"] for s in summaries]),
+            "matvecs": aggregate([s["matvecs"] for s in summaries])}
+    summary = {
+        "title": scenario.title, "command": "relax", "sites": summaries[0]["sites"],
+        "realizations": len(seeds), "base_seed": base_seed(scenario), "seeds": list(seeds),
+        "seed_rule": "numpy.random.SeedSequence(base_seed).spawn(N)[k].generate_state(1, uint32)[0]",
+        "basis": summaries[0]["basis"], "method": summaries[0]["method"], "tolerance": summaries[0]["tolerance"],
+        "wall_seconds": wall, "matvecs": int(sum(s["matvecs"] for s in summaries)),
+        "observables": obs, "cost_per_realization": cost,
+        "statistics": "mean, stderr = std(ddof=1)/sqrt(N), spread = std(ddof=1) over realisations",
+        "folders": [realization_folder(out, k).name for k in range(len(seeds))],
+    }
+    attrs = {"largeq_version": __version__, "scenario_toml": scenario_to_toml(scenario), "title": scenario.title,
+             "versions": package_versions(), "machine": run_metadata(), "seeds": list(seeds),
+             "base_seed": base_seed(scenario), "realizations": len(seeds)}
+    write_results(out / "results.h5", {"curves": tree_curves, "observables": {
+        n: {k: {kk: vv for kk, vv in v.items()} for k, v in o.items()} for n, o in obs.items()}}, attrs=attrs)
+    write_summary(out / "summary.json", summary)
+    plots.plot_relaxation(out / "relaxation.png", times, {n: c[0] for n, c in curves.items()},
+                          equilibrium={n: (obs[n]["equilibrium"]["mean"], obs[n]["equilibrium"]["spread"])
+                                       for n in names},
+                          title=f"{scenario.title} (mean of {len(seeds)} realisations; band: spread)")
+    rows = []
+    for n in names:
+        e = obs[n]["equilibrium"]
+        v = obs[n]["temporal_variance"]
+        rows.append((f"{n}: equilibrium value (mean ± s.e.)", e["mean"], e["stderr"]))
+        rows.append((f"{n}: spread between realisations", html.format_number(e["spread"]), ""))
+        rows.append((f"{n}: temporal variance σ² (mean ± s.e.)", v["mean"], v["stderr"]))
+    html.write_report(out / "report.html", title=scenario.title, subtitle=(
+        f"largeq {__version__}: disorder average of {len(seeds)} realisations, L = {summary['sites']}"), sections=[
+        html.Section("Disorder-averaged relaxation", images=["relaxation.png"], table=rows,
+                     paragraphs=["Shaded band: spread (standard deviation) between realisations; the standard "
+                                 "error of the mean is smaller by √N."]),
+        html.Section("Realisations", table=[(f"realisation {k}", f"seed {s}", realization_folder(out, k).name)
+                                            for k, s in enumerate(seeds)]),
+    ])
+    return summary
