@@ -144,3 +144,42 @@ def check_fits(forecast: MemoryForecast, *, n_sites: int, up_spins: int | None, 
         f"({forecast.vectors:g} vectors of {format_bytes(forecast.vector_bytes)} for dimension {forecast.dimension:,}) "
         f"but only {format_bytes(avail)} is available. Cheaper options: " + "; ".join(options)
     )
+
+
+# ---------------------------------------------------------------------------- measured peak memory
+class PeakRSS:
+    """Context manager that samples this process's resident memory (psutil) in a background thread.
+
+    ``peak`` is the largest RSS seen (bytes), ``start`` the RSS on entry; sampling every ``interval``
+    seconds misses spikes shorter than that (vectors live for whole steps, so peaks are held long enough).
+    """
+
+    def __init__(self, interval: float = 0.02):
+        self.interval = float(interval)
+        self.start = 0
+        self.peak = 0
+        self._stop = None
+        self._thread = None
+
+    def _sample(self) -> None:
+        proc = psutil.Process()
+        while not self._stop.is_set():
+            self.peak = max(self.peak, proc.memory_info().rss)
+            self._stop.wait(self.interval)
+
+    def __enter__(self) -> "PeakRSS":
+        import threading
+
+        self.start = self.peak = psutil.Process().memory_info().rss
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._sample, daemon=True)
+        self._thread.start()
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self._stop.set()
+        self._thread.join()
+        self.peak = max(self.peak, psutil.Process().memory_info().rss)
+
+
+__all__ += ["PeakRSS"]

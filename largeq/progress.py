@@ -57,7 +57,7 @@ class ProgressBar:
     ) -> None:
         self.enabled = enabled
         self.total = total
-        self.n = 0.0
+        self.n = 0
         self._bar = None
         if enabled:
             from tqdm import tqdm
