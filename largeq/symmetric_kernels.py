@@ -417,3 +417,16 @@ def cross_eval(uidx, table, vecs, partial):
                         qq += 1
         for o in range(n_obs):
             partial[c, o] = acc[o]
+
+
+@njit(parallel=True, cache=True)
+def csr_fused(indptr, indices, data, x, y, alpha, beta, gamma):
+    """y <- alpha (M x) + beta x + gamma y for a stored CSR matrix M (row-parallel)."""
+    for i in prange(indptr.shape[0] - 1):
+        acc = data[0] * x[0] * 0
+        for e in range(indptr[i], indptr[i + 1]):
+            acc += data[e] * x[indices[e]]
+        if gamma == 0:
+            y[i] = alpha * acc + beta * x[i]
+        else:
+            y[i] = alpha * acc + beta * x[i] + gamma * y[i]
