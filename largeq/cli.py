@@ -68,7 +68,8 @@ def cmd_describe(args) -> int:
 def cmd_relax(args) -> int:
     from .relax import RelaxOptions, resume_relaxation, run_relaxation
 
-    options = RelaxOptions(checkpoint_seconds=args.checkpoint_every, progress=args.progress, block=args.block)
+    options = RelaxOptions(checkpoint_seconds=args.checkpoint_every, progress=args.progress, block=args.block,
+                           equilibration=args.equilibration, seed=args.seed)
     if args.resume:
         if args.scenario:
             raise UsageError("relax --resume takes a run folder and no scenario")
@@ -164,6 +165,10 @@ def build_parser() -> argparse.ArgumentParser:
                    help="checkpoint interval (default: the scenario's numerics.checkpoint_seconds)")
     p.add_argument("--block", type=int, default=None, metavar="K",
                    help="output times sharing one Chebyshev expansion (default: chosen from free memory)")
+    p.add_argument("--equilibration", choices=("auto", "exact", "estimate", "off"), default="auto",
+                   help="effective dimension, fluctuation bound and thermal values: exact diagonalization where it "
+                        "fits, KPM/typical-state estimates up to dimension 300,000, skipped beyond (auto)")
+    p.add_argument("--seed", type=int, default=20261201, help="seed of the estimators' random vectors (recorded)")
     p.add_argument("--realizations", type=int, default=1, metavar="N",
                    help="disorder realisations (random fields only): one sub-folder each plus their average")
     g = p.add_mutually_exclusive_group()
