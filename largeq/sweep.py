@@ -32,7 +32,7 @@ import json
 import math
 import os
 import time
-from dataclasses import asdict, dataclass, replace
+from dataclasses import asdict, dataclass
 from pathlib import Path
 
 import numpy as np
@@ -41,8 +41,7 @@ from . import __version__
 from .planner import (MemoryRefusal, PeakRSS, available_bytes, evolution_forecast, exact_forecast, format_bytes,
                       kpm_forecast)
 from .reports import html, plots
-from .reports.store import (Quantity, atomic_write_text, make_run_folder, package_versions, read_results,
-                            run_metadata, write_results, write_summary)
+from .reports.store import (Quantity, atomic_write_text, make_run_folder, package_versions, run_metadata, write_results, write_summary)
 from .scenario import Scenario, scenario_to_toml
 
 __all__ = ["SweepOptions", "measure_size", "task_forecast", "run_sweep", "sweep_table", "fit_trends",

@@ -476,7 +476,6 @@ def evolve_split(H: PauliSum, bits: int, times, observables: dict[str, PauliSum]
     Returns a dict with ``curves`` {name: array}, ``sectors`` (labels, weights, dims), ``note`` and
     ``equivalences`` {name: text} where an observable equals its stabiliser average for this state.
     """
-    from .engines.propagate import evolve
 
     times = np.asarray(times, float)
     comps, note = split_basis_state(bits, H.n_sites, translation=translation, reflection=reflection,

@@ -2,7 +2,6 @@
 
 import json
 
-import numpy as np
 import pytest
 
 from largeq.cli import main, resolve_scenario

@@ -7,7 +7,6 @@ References of each check are given beside it.  Tolerances: spectra 1e-10 (dense 
 
 from __future__ import annotations
 
-import itertools
 from math import comb
 
 import numpy as np
