@@ -69,7 +69,7 @@ def cmd_relax(args) -> int:
     from .relax import RelaxOptions, resume_relaxation, run_relaxation
 
     options = RelaxOptions(checkpoint_seconds=args.checkpoint_every, progress=args.progress, block=args.block,
-                           equilibration=args.equilibration, seed=args.seed)
+                           equilibration=args.equilibration, seed=args.seed, symmetry=args.symmetry)
     if args.resume:
         if args.scenario:
             raise UsageError("relax --resume takes a run folder and no scenario")
@@ -169,6 +169,9 @@ def build_parser() -> argparse.ArgumentParser:
                    help="effective dimension, fluctuation bound and thermal values: exact diagonalization where it "
                         "fits, KPM/typical-state estimates up to dimension 300,000, skipped beyond (auto)")
     p.add_argument("--seed", type=int, default=20261201, help="seed of the estimators' random vectors (recorded)")
+    p.add_argument("--symmetry", choices=("auto", "off"), default="auto",
+                   help="evolve in momentum/reflection/spin-flip sectors when the model, the start and the "
+                        "observables allow it (auto), or always in the magnetization sector (off)")
     p.add_argument("--realizations", type=int, default=1, metavar="N",
                    help="disorder realisations (random fields only): one sub-folder each plus their average")
     g = p.add_mutually_exclusive_group()

@@ -66,7 +66,23 @@ def describe_scenario(scenario: Scenario) -> dict:
         *[f"      {k:17s} {format_bytes(f.total_bytes):>11s}   {f.note}" for k, f in forecasts.items()],
         f"  memory available now: {format_bytes(avail)}",
     ]
-    if forecasts["chebyshev"].total_bytes > 0.9 * avail:
+    from .planner import MemoryRefusal
+    from .relax import RelaxOptions, sector_plan
+
+    try:
+        plan = sector_plan(problem, RelaxOptions(), avail, times.size)
+    except MemoryRefusal as exc:
+        plan = None
+        lines.append(f"  symmetry sectors: would not fit ({exc})")
+    if plan is not None:
+        secs = [(c.sector.label, int(c.sector.dim), float(c.weight)) for c in plan["components"]]
+        data["symmetry_sectors"] = {"sectors": secs, "note": plan["note"], "forecast": plan["forecast"].as_dict()}
+        lines.append("  relax will evolve in symmetry sectors:")
+        lines.extend(f"      {lab}: dimension {dim:,}, weight {w:.4g}" for lab, dim, w in secs)
+        lines.append(f"      forecast {format_bytes(plan['forecast'].total_bytes)} ({plan['forecast'].note})")
+    elif sym["translation"] and problem.start.bits is not None:
+        lines.append("  symmetry sectors: not used (they need diagonal observables only and the Chebyshev method)")
+    if forecasts["chebyshev"].total_bytes > 0.9 * avail and plan is None:
         lines.append("  verdict: the time evolution does NOT fit in this machine's memory")
     else:
         lines.append("  verdict: the time evolution fits in this machine's memory")

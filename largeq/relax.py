@@ -14,6 +14,7 @@ import hashlib
 import time
 from dataclasses import dataclass
 from pathlib import Path
+from types import SimpleNamespace
 
 import numpy as np
 
@@ -57,6 +58,10 @@ class RelaxOptions:
         moderate sizes, skipped beyond), "exact", "estimate" or "off".
     seed : int
         Seed of the random vectors used by the estimators (recorded in the results).
+    symmetry : str
+        "auto": evolve in momentum (and reflection / spin-flip) sectors when H is translation
+        invariant, the start is a z-basis state and every observable is diagonal; "off": always
+        the magnetization sector (or full space).
     """
 
     checkpoint_seconds: float | None = None
@@ -65,6 +70,7 @@ class RelaxOptions:
     memory_available: int | None = None
     equilibration: str = "auto"
     seed: int = 20261201
+    symmetry: str = "auto"
 
 
 @dataclass(frozen=True)
@@ -133,10 +139,60 @@ def _prepare(scenario: Scenario, options: RelaxOptions):
     method = scenario.numerics.method
     times = scenario.time.times()
     avail = available_bytes() if options.memory_available is None else int(options.memory_available)
+    plan = sector_plan(problem, options, avail, len(times))
+    if plan is not None:
+        return problem, times, plan["block"], plan["forecast"], plan
     block = options.block or choose_block(basis.dim, basis.n_sites, len(times), avail, method)
     forecast = evolution_forecast(basis.dim, basis.n_sites, method=method, block=block)
     check_fits(forecast, n_sites=basis.n_sites, up_spins=basis.up_spins, available=avail)
-    return problem, times, block, forecast
+    return problem, times, block, forecast, None
+
+
+def sector_plan(problem: Problem, options: RelaxOptions, available: int, n_times: int) -> dict | None:
+    """Momentum (+ reflection, spin-flip) sectors for this run, or None when they do not apply.
+
+    They apply when H is translation invariant and conserves the magnetization, the initial
+    state is a z-basis product state, every observable is diagonal in the z basis (those are
+    evaluated across sectors exactly) and the method is Chebyshev.  The sector matrices are
+    stored (CSR) when that fits in a third of the memory; otherwise the products stay matrix-free.
+    """
+    from .symmetric_ops import split_basis_state
+
+    sym, start = problem.symmetries, problem.start
+    if options.symmetry == "off" or problem.scenario.numerics.method != "chebyshev":
+        return None
+    if not (sym["translation"] and sym["conserves_magnetization"] and start.bits is not None):
+        return None
+    if any(not o.pauli.is_diagonal() for o in problem.observables.values()):
+        return None  # off-diagonal observables connect sectors in ways not evaluated here
+    L, n_up = problem.n_sites, start.up_spins
+    comps, note = split_basis_state(start.bits, L, reflection=sym["reflection"],
+                                    spin_flip=sym["spin_flip"] and 2 * n_up == L)
+    dims = [c.sector.dim for c in comps]
+    block = options.block or 8
+    n_groups = len(problem.hamiltonian.groups())
+    real = all(c.sector.real for c in comps)
+    vec = 16 * sum(dims)
+    # stored sector matrix: about one entry per state for every other off-diagonal group (flip-flop
+    # terms vanish on parallel spins) plus the diagonal; 12 bytes per real entry, 20 per complex one
+    stored_bytes = sum(d * (n_groups / 2 + 1) * (12 if real else 20) + 8 * d for d in dims)
+    # assembling one sector's matrix: COO arrays sized for every group, then the CSR copy (measured ~1.35x)
+    largest = max(dims)
+    build_bytes = 1.35 * largest * (n_groups + 1) * (24 if real else 32)
+    vectors_bytes = (4 + 2 * block) * vec
+    # sectors are assembled one after the other, before the evolution allocates its vectors
+    stored_peak = max(stored_bytes * (1 - largest / sum(dims)) + build_bytes, stored_bytes + vectors_bytes)
+    store = stored_peak <= 0.8 * available
+    total = int((stored_peak if store else vectors_bytes) + 400 * 2**20)
+    forecast = evolution_forecast(max(dims), L, method="chebyshev", block=block)
+    forecast = type(forecast)("chebyshev (sectors)", int(sum(dims)), (4 + 2 * block) * len(dims), max(dims) * 16,
+                              int(stored_bytes) if store else 0, total,
+                              f"{len(dims)} sector(s) {dims}; stored sector matrices: {'yes' if store else 'no'}")
+    check_fits(forecast, n_sites=L, up_spins=n_up, available=available)
+    reason = (f"H is translation invariant: the initial state splits into {len(comps)} symmetry sector(s) of "
+              f"dimensions {', '.join(f'{d:,}' for d in dims)} (instead of {problem.basis.dim:,}); {note}")
+    return {"components": comps, "note": note, "block": block, "store": store, "forecast": forecast,
+            "reason": reason}
 
 
 def run_relaxation(scenario: Scenario, folder=None, options: RelaxOptions = RelaxOptions()) -> RelaxRun:
@@ -149,9 +205,11 @@ def run_relaxation(scenario: Scenario, folder=None, options: RelaxOptions = Rela
     text = scenario_to_toml(scenario)
     if folder is not None and (Path(folder) / CHECKPOINT_NAME).exists():
         raise FileExistsError(f"{folder} holds an unfinished run; continue it with 'largeq relax --resume {folder}'")
-    problem, times, block, forecast = _prepare(scenario, options)  # refuse before creating the folder
+    problem, times, block, forecast, plan = _prepare(scenario, options)  # refuse before creating the folder
     out = make_run_folder(folder, "relax")
     atomic_write_text(out / SCENARIO_FILE, text)
+    if plan is not None:
+        return _execute_sectors(problem, text, out, times, plan, options, resume=False)
     return _execute(problem, text, out, times, block, forecast, options, resume=False)
 
 
@@ -162,7 +220,9 @@ def resume_relaxation(folder, options: RelaxOptions = RelaxOptions()) -> RelaxRu
         raise FileNotFoundError(f"{folder} is not a relaxation run folder (no {SCENARIO_FILE})")
     scenario = load_scenario(folder / SCENARIO_FILE)
     text = scenario_to_toml(scenario)
-    problem, times, block, forecast = _prepare(scenario, options)
+    problem, times, block, forecast, plan = _prepare(scenario, options)
+    if plan is not None:
+        return _execute_sectors(problem, text, folder, times, plan, options, resume=True)
     return _execute(problem, text, folder, times, block, forecast, options, resume=True)
 
 
@@ -233,8 +293,102 @@ def _execute(problem: Problem, text: str, folder: Path, times, block, forecast, 
     return RelaxRun(folder, summary)
 
 
+class _SectorRecorder(_Recorder):
+    """The same records from sector components: psi = sum_s psi_s (cross-sector terms included)."""
+
+    def __init__(self, problem: Problem, ops, cross, psi_start: list, n_times: int):
+        self.problem, self.ops_h, self.cross, self.psi_start = problem, ops, cross, psi_start
+        self.names = list(problem.observables)
+        self.values = {n: np.full(n_times, np.nan) for n in self.names}
+        self.survival = np.full(n_times, np.nan)
+        self.norm = np.full(n_times, np.nan)
+        self.energy = np.full(n_times, np.nan)
+
+    def record(self, i: int, vecs: list) -> None:
+        nrm2 = sum(vdot(v, v).real for v in vecs)
+        self.norm[i] = np.sqrt(nrm2)
+        self.survival[i] = abs(sum(vdot(p, v) for p, v in zip(self.psi_start, vecs))) ** 2
+        self.energy[i] = sum(op.expectation(v).real for op, v in zip(self.ops_h, vecs)) / nrm2
+        for n, val in self.cross(vecs).items():
+            self.values[n][i] = val / nrm2
+
+
+def _execute_sectors(problem: Problem, text: str, folder: Path, times, plan, options, *, resume: bool) -> RelaxRun:
+    """The relaxation run with the state split over symmetry sectors, each evolved on its own."""
+    from .symmetric_ops import CrossSectorDiagonal, SymmetricOperator
+
+    scenario = problem.scenario
+    fp = fingerprint(text)
+    interval = scenario.numerics.checkpoint_seconds if options.checkpoint_seconds is None else options.checkpoint_seconds
+    ck = Checkpointer(folder, interval, fingerprint=fp)
+    comps, block = plan["components"], plan["block"]
+    t0 = time.perf_counter()
+    ops = [SymmetricOperator(problem.hamiltonian, c.sector) for c in comps]
+    if plan["store"]:
+        ops = [op.stored() for op in ops]
+    cross = CrossSectorDiagonal([c.sector for c in comps], {n: o.pauli for n, o in problem.observables.items()})
+    psi_start = [np.ascontiguousarray(c.vector, dtype=np.complex128) for c in comps]
+    rec = _SectorRecorder(problem, ops, cross, psi_start, len(times))
+    states = [v.copy() for v in psi_start]
+    start_index, matvecs = 0, 0
+    loaded = load_checkpoint(folder, expect_fingerprint=fp) if resume else None
+    bounds = [spectral_bounds(op, rng=np.random.default_rng(BOUNDS_SEED)) for op in ops]
+    matvecs += sum(b.steps for b in bounds)
+    elapsed_before = time.perf_counter() - t0
+    if loaded is not None:
+        state, meta = loaded
+        block = int(state["block"])
+        start_index = int(state["index"])
+        states = [np.ascontiguousarray(state[f"psi_{a}"]) for a in range(len(comps))]
+        rec.restore(state)
+        elapsed_before = float(state["elapsed"])
+        matvecs = int(state["matvecs"])
+    else:
+        rec.record(0, states)
+    last = len(times) - 1
+    wall0 = time.perf_counter()
+    bar = progress_bar(last, f"relax L={problem.n_sites} ({len(comps)} sectors)", enabled=options.progress)
+    bar.update(start_index)
+    errors = []
+    i = start_index
+    while i < last:
+        j_end = min(last, (i // block + 1) * block)
+        outs = [[None] * (j_end - i) for _ in comps]
+        for a, op in enumerate(ops):
+            def keep(idx, t, psi, a=a):
+                outs[a][idx - i - 1] = np.array(psi)
+            st = evolve(op, states[a], times[: j_end + 1], bounds=bounds[a], tol=scenario.numerics.tolerance,
+                        block=block, on_output=keep, start_index=i, emit_start=False)
+            matvecs += st.matvecs
+            errors.append(st.max_error_estimate)
+        for k in range(j_end - i):
+            rec.record(i + 1 + k, [outs[a][k] for a in range(len(comps))])
+        states = [outs[a][-1] for a in range(len(comps))]
+        bar.update(j_end - i)
+        i = j_end
+        if i < last:
+            def snapshot(i=i):
+                st = {f"psi_{a}": v for a, v in enumerate(states)}
+                st.update(index=i, block=block, elapsed=elapsed_before + time.perf_counter() - wall0, matvecs=matvecs)
+                st.update(rec.arrays())
+                return st, {"time": float(times[i])}
+            ck.maybe_save(snapshot)
+    bar.close()
+    wall = elapsed_before + time.perf_counter() - wall0
+    stats = SimpleNamespace(max_error_estimate=max(errors, default=0.0), total_error_estimate=float(sum(errors)))
+    sector_info = {"note": plan["note"], "reason": plan["reason"], "stored_matrices": plan["store"],
+                   "sectors": [{"label": c.sector.label, "dimension": int(c.sector.dim), "weight": float(c.weight)}
+                               for c in comps]}
+    summary = _finish(problem, text, folder, times, rec, bounds[0], block, plan["forecast"], stats, matvecs, wall,
+                      1.0, options, sectors=sector_info)
+    ckfile = folder / CHECKPOINT_NAME
+    if ckfile.exists():
+        ckfile.unlink()
+    return RelaxRun(folder, summary)
+
+
 def _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, matvecs, wall, captured,
-            options) -> dict:
+            options, sectors: dict | None = None) -> dict:
     scenario = problem.scenario
     analyses = {n: analyse_curve(times, rec.values[n]) for n in rec.names}
     eq = equilibration_report(problem, times, rec.survival, analyses, mode=options.equilibration,
@@ -296,7 +450,8 @@ def _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, m
         "versions": package_versions(),
         "machine": run_metadata(),
         "basis": problem.basis.describe(),
-        "basis_reason": problem.basis_reason,
+        "basis_reason": problem.basis_reason if sectors is None else sectors["reason"],
+        "symmetry_sectors": sectors or {},
         "symmetries": problem.symmetries,
         "initial_state": problem.start.label,
         "initial_weight_in_basis": captured,
@@ -311,7 +466,8 @@ def _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, m
     summary = {
         "title": scenario.title,
         "sites": problem.n_sites,
-        "basis": problem.basis.describe() | {"reason": problem.basis_reason},
+        "basis": problem.basis.describe() | {"reason": problem.basis_reason if sectors is None else sectors["reason"]},
+        "symmetry_sectors": sectors,
         "initial_state": problem.start.label,
         "initial_energy": float(rec.energy[0]),
         "energy_drift": energy_drift,
@@ -385,7 +541,8 @@ def _plots_and_report(problem, folder: Path, times, rec, analyses, summary, eq_r
             ("norm drift", html.format_number(summary["norm_drift"]), ""),
         ]),
         html.Section("Run", table=[
-            ("basis", problem.basis.label, problem.basis_reason),
+            ("basis", problem.basis.label,
+             summary["basis"]["reason"]),
             ("initial state", problem.start.label, ""),
             ("method", summary["method"], f"tolerance {summary['tolerance']:g}"),
             ("matrix-vector products", str(summary["matvecs"]), ""),

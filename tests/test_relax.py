@@ -202,13 +202,15 @@ points = 301
 """
 
 
-def test_sigkill_then_resume_reproduces_uninterrupted_run(tmp_path):
+@pytest.mark.parametrize("symmetry", ["auto", "off"])
+def test_sigkill_then_resume_reproduces_uninterrupted_run(tmp_path, symmetry):
     path = tmp_path / "s.toml"
     path.write_text(KILL_SCENARIO)
     killed = tmp_path / "killed"
     env = dict(os.environ, LARGEQ_PROGRESS="0")
     proc = subprocess.Popen([sys.executable, "-m", "largeq", "relax", str(path), "--out", str(killed),
-                             "--checkpoint-every", "0", "--block", "2", "--no-progress"], env=env,
+                             "--checkpoint-every", "0", "--block", "2", "--no-progress", "--symmetry", symmetry,
+                             "--equilibration", "off"], env=env,
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE)
     ck = killed / "checkpoint.h5"
     deadline = time.time() + 120
@@ -220,8 +222,10 @@ def test_sigkill_then_resume_reproduces_uninterrupted_run(tmp_path):
     if proc.returncode != -signal.SIGKILL:
         pytest.fail(f"the run finished before it could be killed (rc {proc.returncode}); make it longer")
     assert ck.exists() and not (killed / "results.h5").exists()
-    resumed = resume_relaxation(killed, RelaxOptions(progress=False))
-    clean = run_relaxation(parse_scenario_file(path), tmp_path / "clean", RelaxOptions(progress=False, block=2))
+    opts = dict(progress=False, symmetry=symmetry, equilibration="off")
+    resumed = resume_relaxation(killed, RelaxOptions(**opts))
+    clean = run_relaxation(parse_scenario_file(path), tmp_path / "clean", RelaxOptions(block=2, **opts))
+    assert (resumed.summary["symmetry_sectors"] is not None) == (symmetry == "auto")
     a, _ = read_results(resumed.folder / "results.h5", quantities=False)
     b, _ = read_results(clean.folder / "results.h5", quantities=False)
     for key in ("stag", "survival_probability", "norm", "energy"):
@@ -257,3 +261,22 @@ def test_summary_carries_effective_dimension_bound_and_thermal_values(tmp_path):
         assert "canonical" in o and "microcanonical" in o
     off = run_relaxation(scenario(), tmp_path / "off", RelaxOptions(progress=False, equilibration="off"))
     assert off.summary["equilibration"]["method"] == "skipped"
+
+
+def test_symmetry_sectors_reproduce_the_magnetization_sector_run(tmp_path):
+    # the Neel state of a translation-invariant ring splits into momentum sectors (k = 0, pi);
+    # diagonal observables evaluated across sectors must equal the plain sector-free run
+    sc = scenario(chain={"sites": 16, "boundary": "periodic"},
+                  observe=[{"name": "stag", "kind": "sum", "axis": "z", "signs": "staggered"},
+                           {"name": "z0", "kind": "site", "axis": "z", "site": 0},
+                           {"name": "zz2", "kind": "zz", "distance": 2, "site": "average"}],
+                  time={"t_max": 6.0, "points": 31})
+    opts = dict(progress=False, equilibration="off")
+    split = run_relaxation(sc, tmp_path / "split", RelaxOptions(symmetry="auto", **opts))
+    plain = run_relaxation(sc, tmp_path / "plain", RelaxOptions(symmetry="off", **opts))
+    assert split.summary["symmetry_sectors"] and len(split.summary["symmetry_sectors"]["sectors"]) >= 2
+    assert plain.summary["symmetry_sectors"] is None
+    a, _ = read_results(split.folder / "results.h5", quantities=False)
+    b, _ = read_results(plain.folder / "results.h5", quantities=False)
+    for key in ("stag", "z0", "zz2", "survival_probability", "energy", "norm"):
+        assert np.max(np.abs(a["curves"][key] - b["curves"][key])) < 1e-9, key
