@@ -142,10 +142,10 @@ def test_every_preset_matches_dense_expm(preset, start, method):
     got = curves(problem, times, method=method)
     H = problem.operator.to_dense()
     psi, _ = problem.initial_vector()
+    states = [scipy.linalg.expm(-1j * H * t) @ psi for t in times]
     for name in problem.observables:
         A = problem.observable_operator(name).to_dense()
-        for a, t in enumerate(times):
-            v = scipy.linalg.expm(-1j * H * t) @ psi
+        for a, v in enumerate(states):
             assert abs(np.vdot(v, A @ v).real - got[name][a]) < 1e-9
 
 
