@@ -23,7 +23,7 @@ from scipy.sparse.linalg import LinearOperator
 from . import symmetric_kernels as sk
 from .pauli import PauliSum
 from .symmetric import GroupSpec, SymmetricSector, orbit_representatives, symmetric_sector
-from .vectors import threads_for
+from .vectors import threads_for, vdot
 
 __all__ = ["SymmetricOperator", "StoredSectorMatrix", "is_invariant", "split_basis_state", "SectorComponent", "CrossSectorDiagonal",
            "evolve_split", "stabiliser_average", "expand_to_magnetization", "project_from_magnetization"]
@@ -213,6 +213,16 @@ class StoredSectorMatrix(SymmetricOperator):
 
     def table_bytes(self) -> int:
         return super().table_bytes() + int(sum(a.nbytes for a in self._csr))
+
+    def expectation(self, x: np.ndarray):
+        """<x|A|x> through the stored matrix (one temporary vector; the matrix-free path rescans orbits)."""
+        x = np.ascontiguousarray(x)
+        if x.shape != (self.shape[0],):
+            raise ValueError(f"expectation: vector must have shape ({self.shape[0]},), got {x.shape}")
+        y = np.empty(self.shape[0], dtype=self._vec_dtype(x))
+        self.fused_update(x, y)
+        val = vdot(x, y)
+        return val.real if self.hermitian else val
 
     def fused_update(self, x, y, alpha=1.0, beta=0.0, gamma=0.0):
         if x is y or np.shares_memory(x, y):

@@ -322,3 +322,22 @@ def test_neel_relaxation_matches_magnetization_sector_large(L):
     ref = _u1_curves(H, L, neel(L), times, obs, 1e-13)
     for k in obs:
         np.testing.assert_allclose(res["curves"][k], ref[k], atol=1e-10, rtol=0)
+
+
+def test_stored_matrix_expectation_matches_matrix_free():
+    # the stored-matrix operator must give the same <x|H|x> as the matrix-free one (and as CSR)
+    import numpy as np
+
+    from largeq.symmetric import symmetric_sector
+    from largeq.symmetric_ops import SymmetricOperator
+    sys_path_bench = __import__("sys").path
+    sys_path_bench.insert(0, str(__import__("pathlib").Path(__file__).resolve().parents[1] / "benchmarks"))
+    from _common import j1j2_ring
+
+    L = 12
+    sec = symmetric_sector(L, L // 2, momentum=3)
+    op = SymmetricOperator(j1j2_ring(L), sec)
+    x = np.random.default_rng(2).normal(size=sec.dim) + 1j * np.random.default_rng(3).normal(size=sec.dim)
+    ref = np.vdot(x, op.to_csr() @ x).real
+    assert abs(op.stored().expectation(x) - ref) < 1e-10 * abs(ref)
+    assert abs(op.expectation(x) - ref) < 1e-10 * abs(ref)
