@@ -338,9 +338,12 @@ def _verdict(f: dict, fits_mem: bool, d_sub: int, stab: int) -> dict:
                      f"{format_bytes(f['available_bytes'])} available; a machine with at least "
                      f"{format_bytes(need / 0.9)} free memory would run it")
     lines.append("symmetries of the model: " + (", ".join(have) or "none found"))
+    sector_note = ("; 'largeq relax' evolves in momentum/reflection/spin-flip sectors (each ~{stab}x smaller: "
+                   "dimension ~{d_sub:,}, about (4 + 2 block) vectors per sector plus the stored sector matrix) "
+                   "when every observable is diagonal in the z basis and the start is a z-basis state; with "
+                   "off-diagonal observables it stays in the magnetization sector").format(stab=stab, d_sub=d_sub)
     lines.append("largeq's evolution uses: " + (", ".join(uses) or "the full space")
-                 + f"; momentum, reflection and spin-flip blocks (at most ~{stab}x smaller: dimension ~{d_sub:,}) "
-                 "are used only by the exact engine today")
+                 + (sector_note if s.get("translation") else ""))
     if "evolution" in f:
         t = f["evolution"]["seconds"]
         cores = f["cores"] or 1
