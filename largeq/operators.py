@@ -17,7 +17,7 @@ from .vectors import threads_for
 from .basis import Basis
 from .pauli import PauliSum
 
-__all__ = ["PauliOperator", "pauli_operator"]
+__all__ = ["PauliOperator", "pauli_operator", "fused_arguments"]
 
 
 def _zsign(z, b):
@@ -58,6 +58,32 @@ def _group_arrays(groups: dict, dtype):
         ptr.append(len(zs))
     return (gx, np.array(ptr, np.int64), np.array(zs, np.int64),
             np.array(cs, dtype=np.complex128).astype(dtype) if dtype == np.float64 else np.array(cs, dtype=dtype))
+
+
+def fused_arguments(n: int, coeff_dtype, x, y, alpha, beta, gamma):
+    """Check the vectors of ``y <- alpha A x + beta x + gamma y`` and cast x and the scalars.
+
+    Shared by every compiled operator: x and y distinct, C-contiguous, shape (n,); y must hold
+    the result dtype; complex scalars need a complex y.  Returns (x cast to y's dtype, scalars).
+    """
+    if x is y or np.shares_memory(x, y):
+        raise ValueError("fused_update: x and y must not share memory")
+    if x.shape != (n,) or y.shape != (n,):
+        raise ValueError(f"fused_update: vectors must have shape ({n},), got {x.shape} and {y.shape}")
+    if not (x.flags.c_contiguous and y.flags.c_contiguous):
+        raise ValueError("fused_update: vectors must be C-contiguous")
+    need = np.result_type(coeff_dtype, x.dtype)
+    if y.dtype != need:
+        raise TypeError(f"fused_update: output dtype {y.dtype} cannot hold the result ({need})")
+    if x.dtype != need:
+        x = x.astype(need)
+    t = y.dtype.type
+    scal = []
+    for name, s in (("alpha", alpha), ("beta", beta), ("gamma", gamma)):
+        if np.iscomplexobj(s) and not np.iscomplexobj(y) and np.imag(s) != 0:
+            raise TypeError(f"fused_update: complex {name} needs a complex output vector")
+        scal.append(t(np.real(s)) if not np.iscomplexobj(y) else t(s))
+    return x, scal
 
 
 class PauliOperator(LinearOperator):
@@ -235,23 +261,7 @@ class PauliOperator(LinearOperator):
 
     def fused_update(self, x, y, alpha=1.0, beta=0.0, gamma=0.0):
         """In place ``y <- alpha * (A x) + beta * x + gamma * y``; x and y distinct 1-d arrays."""
-        if x is y or np.shares_memory(x, y):
-            raise ValueError("fused_update: x and y must not share memory")
-        if x.shape != (self.shape[1],) or y.shape != (self.shape[0],):
-            raise ValueError(f"fused_update: vectors must have shape ({self.shape[0]},), got {x.shape} and {y.shape}")
-        if not (x.flags.c_contiguous and y.flags.c_contiguous):
-            raise ValueError("fused_update: vectors must be C-contiguous")
-        need = self._vec_dtype(x)
-        if y.dtype != need:
-            raise TypeError(f"fused_update: output dtype {y.dtype} cannot hold the result ({need})")
-        if x.dtype != need:
-            x = x.astype(need)
-        t = y.dtype.type
-        scal = []
-        for name, s in (("alpha", alpha), ("beta", beta), ("gamma", gamma)):
-            if np.iscomplexobj(s) and not np.iscomplexobj(y) and np.imag(s) != 0:
-                raise TypeError(f"fused_update: complex {name} needs a complex output vector")
-            scal.append(t(np.real(s)) if not np.iscomplexobj(y) else t(s))
+        x, scal = fused_arguments(self.shape[0], self.coeff_dtype, x, y, alpha, beta, gamma)
         with threads_for(self.shape[0]):
             kernels.fused_kernel(*self._args(), x, y, *scal)
         return y

@@ -200,7 +200,7 @@ def measure_size(scenario: Scenario, options: SweepOptions, *, realization: int 
         block = _block(problem.basis.dim, L, times.size, mem)
         t_ev = time.perf_counter()
         mv0 = count["n"]
-        stats = evolve(op, psi, times, bounds=bounds, tol=min(scenario.numerics.tolerance, 1e-12), block=block,
+        evolve(op, psi, times, bounds=bounds, tol=min(scenario.numerics.tolerance, 1e-12), block=block,
                        on_output=on_output)
         evolution_seconds = time.perf_counter() - t_ev
         evolution_matvecs = count["n"] - mv0

@@ -21,6 +21,7 @@ import scipy.sparse as sp
 from scipy.sparse.linalg import LinearOperator
 
 from . import symmetric_kernels as sk
+from .operators import fused_arguments
 from .pauli import PauliSum
 from .symmetric import GroupSpec, SymmetricSector, orbit_representatives, symmetric_sector
 from .vectors import threads_for, vdot
@@ -126,24 +127,8 @@ class SymmetricOperator(LinearOperator):
 
     def fused_update(self, x, y, alpha=1.0, beta=0.0, gamma=0.0):
         """In place ``y <- alpha * (A x) + beta * x + gamma * y``; x and y distinct 1-d arrays."""
-        if x is y or np.shares_memory(x, y):
-            raise ValueError("fused_update: x and y must not share memory")
         n = self.shape[0]
-        if x.shape != (n,) or y.shape != (n,):
-            raise ValueError(f"fused_update: vectors must have shape ({n},), got {x.shape} and {y.shape}")
-        if not (x.flags.c_contiguous and y.flags.c_contiguous):
-            raise ValueError("fused_update: vectors must be C-contiguous")
-        need = self._vec_dtype(x)
-        if y.dtype != need:
-            raise TypeError(f"fused_update: output dtype {y.dtype} cannot hold the result ({need})")
-        if x.dtype != need:
-            x = x.astype(need)
-        t = y.dtype.type
-        scal = []
-        for name, s in (("alpha", alpha), ("beta", beta), ("gamma", gamma)):
-            if np.iscomplexobj(s) and not np.iscomplexobj(y) and np.imag(s) != 0:
-                raise TypeError(f"fused_update: complex {name} needs a complex output vector")
-            scal.append(t(np.real(s)) if not np.iscomplexobj(y) else t(s))
+        x, scal = fused_arguments(n, self.coeff_dtype, x, y, alpha, beta, gamma)
         if n == 0:
             return y
         with threads_for(n):
@@ -225,18 +210,8 @@ class StoredSectorMatrix(SymmetricOperator):
         return val.real if self.hermitian else val
 
     def fused_update(self, x, y, alpha=1.0, beta=0.0, gamma=0.0):
-        if x is y or np.shares_memory(x, y):
-            raise ValueError("fused_update: x and y must not share memory")
         n = self.shape[0]
-        if x.shape != (n,) or y.shape != (n,):
-            raise ValueError(f"fused_update: vectors must have shape ({n},), got {x.shape} and {y.shape}")
-        need = self._vec_dtype(x)
-        if y.dtype != need:
-            raise TypeError(f"fused_update: output dtype {y.dtype} cannot hold the result ({need})")
-        if x.dtype != need:
-            x = x.astype(need)
-        t = y.dtype.type
-        scal = [t(np.real(s)) if not np.iscomplexobj(y) else t(s) for s in (alpha, beta, gamma)]
+        x, scal = fused_arguments(n, self.coeff_dtype, x, y, alpha, beta, gamma)
         if n:
             with threads_for(n):
                 sk.csr_fused(*self._csr, x, y, *scal)
