@@ -11,7 +11,7 @@ import time
 
 import numpy as np
 
-from largeq.pauli import PauliSum, pauli_string
+from largeq.model.pauli import PauliSum, pauli_string
 
 
 def j1j2_ring(L: int, j1: float = 1.0, j2: float = 0.3, d1: float = 1.0, d2: float = 1.0) -> PauliSum:

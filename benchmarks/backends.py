@@ -47,10 +47,10 @@ import psutil  # noqa: E402
 
 from _common import emit_json, j1j2_ring, machine_line, median_time, print_table  # noqa: E402
 from largeq.backends import get_backend  # noqa: E402
-from largeq.basis import magnetization_basis  # noqa: E402
+from largeq.basis.spaces import magnetization_basis  # noqa: E402
 from largeq.engines.bounds import spectral_bounds  # noqa: E402
 from largeq.engines.propagate import evolve  # noqa: E402
-from largeq.operators import PauliOperator  # noqa: E402
+from largeq.operators.pauli_operator import PauliOperator  # noqa: E402
 
 
 def run(L: int, jb, args) -> dict:

@@ -33,10 +33,10 @@ HERE = Path(__file__).resolve().parent
 def child(method: str, L: int, t_max: float, points: int, out: str, block: int) -> None:
     sys.path.insert(0, str(HERE))
     from _common import j1j2_ring, peak_rss_bytes
-    from largeq.basis import magnetization_basis
-    from largeq.operators import PauliOperator
-    from largeq.pauli import PauliSum
-    from largeq.states import basis_state
+    from largeq.basis.spaces import magnetization_basis
+    from largeq.operators.pauli_operator import PauliOperator
+    from largeq.model.pauli import PauliSum
+    from largeq.basis.states import basis_state
 
     times = np.linspace(0.0, t_max, points)
     basis = magnetization_basis(L, L // 2)

@@ -19,8 +19,8 @@ import numpy as np
 import psutil
 
 from _common import copy_bandwidth, emit_json, j1j2_ring, machine_line, median_time, print_table
-from largeq.basis import magnetization_basis
-from largeq.operators import PauliOperator
+from largeq.basis.spaces import magnetization_basis
+from largeq.operators.pauli_operator import PauliOperator
 
 
 def csr_bytes(m) -> int:

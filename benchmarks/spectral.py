@@ -38,8 +38,8 @@ VECTORS = 4
 
 def _one_kpm(L: int) -> dict:
     from largeq.cli import resolve_scenario
-    from largeq.planner import kpm_forecast
-    from largeq.spectra import SpectraOptions, run_spectra
+    from largeq.workflows.planning import kpm_forecast
+    from largeq.workflows.spectra import SpectraOptions, run_spectra
 
     scen = resolve_scenario("neel_j1j2", L)
     with tempfile.TemporaryDirectory() as tmp:
@@ -58,7 +58,7 @@ def _one_dense(L: int) -> dict:
     import numpy as np
 
     from largeq.cli import resolve_scenario
-    from largeq.assemble import build_problem
+    from largeq.operators.problem import build_problem
 
     problem = build_problem(resolve_scenario("neel_j1j2", L))
     t = time.perf_counter()
@@ -83,7 +83,7 @@ def _median(rows: list[dict], key: str) -> float:
 
 
 def dense_max_L(available: int) -> int:
-    from largeq.planner import exact_forecast
+    from largeq.workflows.planning import exact_forecast
 
     best = 0
     for L in range(4, 40, 2):
@@ -108,7 +108,7 @@ def main() -> None:
 
     import psutil
 
-    from largeq.planner import exact_forecast, format_bytes
+    from largeq.workflows.planning import exact_forecast, format_bytes
 
     sizes = args.sizes or ([16, 18, 20] if args.quick else [20, 22, 24, 26])
     dense_sizes = args.dense_sizes or ([12, 14] if args.quick else [12, 14, 16])

@@ -26,14 +26,14 @@ from _common import emit_json, j1j2_ring, machine_line, median_time, peak_rss_by
 
 
 def _observable(L):
-    from largeq.pauli import PauliSum
+    from largeq.model.pauli import PauliSum
 
     return PauliSum(L, np.zeros(L, np.int64), np.array([1 << j for j in range(L)]),
                     np.array([(-1.0) ** j for j in range(L)]))
 
 
 def run_symmetric(L: int, n_times: int) -> dict:
-    from largeq.symmetric_ops import evolve_split
+    from largeq.operators.sector_operator import evolve_split
 
     H = j1j2_ring(L)
     neel = sum(1 << j for j in range(1, L, 2))
@@ -47,10 +47,10 @@ def run_symmetric(L: int, n_times: int) -> dict:
 
 
 def run_u1(L: int, n_times: int) -> dict:
-    from largeq.basis import magnetization_basis
+    from largeq.basis.spaces import magnetization_basis
     from largeq.engines.propagate import evolve
-    from largeq.operators import PauliOperator
-    from largeq.states import basis_state
+    from largeq.operators.pauli_operator import PauliOperator
+    from largeq.basis.states import basis_state
 
     H = j1j2_ring(L)
     neel = sum(1 << j for j in range(1, L, 2))
@@ -71,10 +71,10 @@ def run_u1(L: int, n_times: int) -> dict:
 
 def run_lookup(L: int) -> dict:
     """One matvec per lookup method in the k = 0, R = +, F = + sector, and the magnetization-sector matvec."""
-    from largeq.basis import magnetization_basis
-    from largeq.operators import PauliOperator
-    from largeq.symmetric import GroupSpec, orbit_representatives, symmetric_sector
-    from largeq.symmetric_ops import SymmetricOperator
+    from largeq.basis.spaces import magnetization_basis
+    from largeq.operators.pauli_operator import PauliOperator
+    from largeq.basis.sectors import GroupSpec, orbit_representatives, symmetric_sector
+    from largeq.operators.sector_operator import SymmetricOperator
 
     H = j1j2_ring(L)
     out = {"L": L}

@@ -8,7 +8,7 @@ import h5py
 import numpy as np
 
 from largeq.cli import main
-from largeq.crosscheck import format_table, ks_distances
+from largeq.workflows.crosscheck import format_table, ks_distances
 
 
 def test_crosscheck_writes_a_complete_run_folder(tmp_path, capsys):

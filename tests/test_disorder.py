@@ -6,7 +6,8 @@ import numpy as np
 import pytest
 
 from largeq.cli import main, resolve_scenario
-from largeq.disorder import (aggregate, aggregate_curves, base_seed, is_disordered, realization_seeds, with_seed)
+from largeq.workflows.disorder import (aggregate, aggregate_curves, base_seed, is_disordered,
+                                       realization_seeds, with_seed)
 
 
 def test_seeds_deterministic_distinct_and_prefix_stable():

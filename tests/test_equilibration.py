@@ -1,4 +1,4 @@
-"""Tests of largeq.equilibration and largeq.symmetry_blocks (exact quench quantities, bound, <r>, d_eff).
+"""Tests of largeq.analysis.equilibration and largeq.basis.blocks (exact quench quantities, bound, <r>, d_eff).
 
 References are cited beside each check.
 """
@@ -9,14 +9,14 @@ import numpy as np
 import pytest
 import scipy.linalg
 
-from largeq.analysis.equilibrium import GOE_R, POISSON_R
-from largeq.assemble import build_problem
+from largeq.analysis.bounds import GOE_R, POISSON_R
+from largeq.operators.problem import build_problem
 from largeq.cli import resolve_scenario
 from largeq.engines.propagate import evolve
-from largeq.equilibration import (DenseLimitError, default_bounds, estimate_deff, exact_equilibration,
-                                  exact_thermal_values, integrability_warning)
-from largeq.scenario import parse_scenario, scenario_to_dict
-from largeq.symmetry_blocks import resolved_level_ratio, symmetry_blocks, symmetry_group
+from largeq.analysis.equilibration import (DenseLimitError, default_bounds, estimate_deff,
+                                           exact_equilibration, exact_thermal_values, integrability_warning)
+from largeq.scenario.spec import parse_scenario, scenario_to_dict
+from largeq.basis.blocks import resolved_level_ratio, symmetry_blocks, symmetry_group
 
 
 def make(example, L, start=None, model=None, boundary=None):

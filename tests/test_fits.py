@@ -1,4 +1,4 @@
-"""Finite-size fits (largeq.fits): slopes recovered from synthetic data, error bars that cover the truth.
+"""Finite-size fits (largeq.analysis.fits): slopes recovered from synthetic data, error bars that cover the truth.
 
 Coverage tolerances: over M independent data sets the fraction f of 1-sigma intervals that contain the truth
 is binomial with mean p and standard deviation sqrt(p(1 - p)/M); we accept |f - p| < 4 of those standard
@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from largeq.fits import extrapolate, fit_inverse_size, fit_log_deff, fit_log_sigma, linear_fit
+from largeq.analysis.fits import extrapolate, fit_inverse_size, fit_log_deff, fit_log_sigma, linear_fit
 
 SIZES = np.array([10, 12, 14, 16, 18, 20], dtype=float)
 

@@ -13,11 +13,12 @@ from math import comb
 import numpy as np
 import pytest
 
-from largeq.basis import full_basis
+from largeq.basis.spaces import full_basis
 from largeq.cli import resolve_scenario
-from largeq.forecast import calibrate, forecast, measure_evolution, predict_evolution, sector_weights
-from largeq.scenario import parse_scenario, scenario_to_dict, scenario_to_toml
-from largeq.states import product_state
+from largeq.workflows.forecast import (calibrate, forecast, measure_evolution, predict_evolution,
+                                       sector_weights)
+from largeq.scenario.spec import parse_scenario, scenario_to_dict, scenario_to_toml
+from largeq.basis.states import product_state
 
 
 def _with_time(s, t_max, points):
@@ -28,7 +29,7 @@ def _with_time(s, t_max, points):
 
 @pytest.mark.parametrize("L", [6, 7, 9])
 def test_sector_counts_and_weights_brute_force(L):
-    from largeq import model
+    from largeq.model import build as model
 
     d = scenario_to_dict(resolve_scenario("xx_neel"))
     d["chain"]["sites"] = L
@@ -81,7 +82,7 @@ def test_predicted_memory_within_20_percent(L):
     s = _with_time(resolve_scenario("neel_j1j2", L), 0.4, 3)
     f = forecast(s, calibrate_here=False, block=2)
     code = ("import json, sys, tomllib; from largeq.scenario import parse_scenario; "
-            "from largeq.forecast import measure_evolution; "
+            "from largeq.workflows.forecast import measure_evolution; "
             "print(json.dumps(measure_evolution(parse_scenario(tomllib.loads(sys.stdin.read())), block=2)))")
     res = subprocess.run([sys.executable, "-c", code], input=scenario_to_toml(s), capture_output=True, text=True,
                          timeout=300, check=True)

@@ -24,9 +24,9 @@ import numpy as np
 import pytest
 
 from largeq.backends import BACKENDS, BackendUnavailable, get_backend, make_operator
-from largeq.basis import full_basis, magnetization_basis
-from largeq.operators import PauliOperator
-from largeq.pauli import PauliSum, pauli_string
+from largeq.basis.spaces import full_basis, magnetization_basis
+from largeq.operators.pauli_operator import PauliOperator
+from largeq.model.pauli import PauliSum, pauli_string
 
 ROOT = Path(__file__).resolve().parents[1]
 TOL = 1e-12
@@ -150,17 +150,17 @@ def test_group_loop_path_matches(jb, monkeypatch):
 
 
 def _examples():
-    names = sorted(p.name for p in (resources.files("largeq") / "examples_data").iterdir() if p.name.endswith(".toml"))
+    names = sorted(p.name for p in (resources.files("largeq.scenario") / "builtin").iterdir() if p.name.endswith(".toml"))
     assert len(names) >= 4
     return names
 
 
 @pytest.mark.parametrize("name", _examples())
 def test_every_preset_example(jb, name):
-    from largeq.assemble import build_problem
-    from largeq.scenario import load_scenario
+    from largeq.operators.problem import build_problem
+    from largeq.scenario.spec import load_scenario
 
-    with resources.as_file(resources.files("largeq") / "examples_data" / name) as path:
+    with resources.as_file(resources.files("largeq.scenario") / "builtin" / name) as path:
         problem = build_problem(load_scenario(path))
     psi, _ = problem.initial_vector()
     rng = np.random.default_rng(4)
@@ -192,11 +192,11 @@ def _curves(evolve_fn, op, obs_ops, psi0, times, bounds):
 @pytest.mark.parametrize("name", ["neel_j1j2.toml", "ising_tilted.toml"])
 def test_chebyshev_evolution_curves_match(jb, name):
     """Sector (real H) and full space (x field) runs: every output state and observable curve."""
-    from largeq.assemble import build_problem
+    from largeq.operators.problem import build_problem
     from largeq.engines.bounds import spectral_bounds
-    from largeq.scenario import load_scenario
+    from largeq.scenario.spec import load_scenario
 
-    with resources.as_file(resources.files("largeq") / "examples_data" / name) as path:
+    with resources.as_file(resources.files("largeq.scenario") / "builtin" / name) as path:
         problem = build_problem(load_scenario(path))
     psi0, _ = problem.initial_vector()
     times = np.array([0.0, 0.3, 0.7, 1.5, 2.0, 3.2])  # non-uniform: several orders
@@ -319,7 +319,7 @@ def _run_python(code: str, env_extra: dict, timeout: float = 240) -> subprocess.
 
 def test_importing_largeq_does_not_import_jax():
     r = _run_python("""
-        import sys, largeq, largeq.backends, largeq.operators, largeq.engines.propagate, largeq.assemble
+        import sys, largeq, largeq.backends, largeq.operators, largeq.engines.propagate, largeq.operators.problem
         print(sorted(m for m in sys.modules if m == "jax" or m.startswith("jax.")))
     """, {})
     assert r.returncode == 0, r.stderr

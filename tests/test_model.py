@@ -9,9 +9,9 @@ import pytest
 import quimb
 import scipy.sparse as sp
 
-from largeq import model
-from largeq.pauli import PauliSum
-from largeq.scenario import parse_scenario
+from largeq.model import build as model
+from largeq.model.pauli import PauliSum
+from largeq.scenario.spec import parse_scenario
 
 # ---------------------------------------------------------------------- independent dense reference
 # Single-site matrices in the basis (|down>, |up>) = (bit 0, bit 1).  sigma^y|up> = i|down>.
@@ -81,7 +81,7 @@ def scen(L, boundary="periodic", *, couplings=None, preset=None, fields=None, bo
 
 # ---------------------------------------------------------------------- the reference itself
 def test_dense_reference_matches_documented_pauli_action():
-    """dense() agrees with P|b> = i^{#Y} (-1)^{popcount(z & ~b)} |b ^ x> (largeq.pauli docstring)."""
+    """dense() agrees with P|b> = i^{#Y} (-1)^{popcount(z & ~b)} |b ^ x> (largeq.model.pauli docstring)."""
     L = 3
     rng = np.random.default_rng(0)
     for _ in range(10):

@@ -10,9 +10,9 @@ import numpy as np
 import pytest
 import scipy.sparse.linalg as sla
 
-from largeq.basis import full_basis, magnetization_basis
-from largeq.operators import PauliOperator
-from largeq.pauli import PauliSum, pauli_string
+from largeq.basis.spaces import full_basis, magnetization_basis
+from largeq.operators.pauli_operator import PauliOperator
+from largeq.model.pauli import PauliSum, pauli_string
 
 PAULI = {
     "I": np.eye(2),
@@ -219,7 +219,7 @@ def test_table_memory_is_tiny_compared_with_a_vector():
 @pytest.mark.parametrize("example", ["neel_j1j2", "ising_tilted", "xx_neel", "disordered_heisenberg"])
 @pytest.mark.parametrize("basis_kind", ["chosen", "full"])
 def test_every_preset_matrix_free_equals_csr(example, basis_kind):
-    from largeq.assemble import build_problem
+    from largeq.operators.problem import build_problem
     from largeq.cli import resolve_scenario
 
     sc = resolve_scenario(example, 10)

@@ -456,9 +456,9 @@ def test_fused_update_contract(dense_cache, method):
 
 def test_largeq_pauli_operator_integration():
     # the package's own matrix-free operator (fused_update path) against the kron reference
-    pauli = pytest.importorskip("largeq.pauli")
-    ops = pytest.importorskip("largeq.operators")
-    basis_mod = pytest.importorskip("largeq.basis")
+    pauli = pytest.importorskip("largeq.model.pauli")
+    ops = pytest.importorskip("largeq.operators.pauli_operator")
+    basis_mod = pytest.importorskip("largeq.basis.spaces")
     L = 8
     terms = pauli.empty(L)
     for j in range(L):
@@ -495,7 +495,7 @@ def test_chebyshev_order_zero_and_tiny_x():
 def test_many_small_steps_do_not_trip_the_norm_check():
     # regression: the norm check once compared against the initial norm, so round-off
     # accumulated over ~100 steps at tol = 1e-10 raised a spurious "bounds" error
-    from largeq.assemble import build_problem
+    from largeq.operators.problem import build_problem
     from largeq.cli import resolve_scenario
 
     problem = build_problem(resolve_scenario("neel_j1j2", 10))

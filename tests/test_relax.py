@@ -22,12 +22,12 @@ import pytest
 import scipy.linalg
 from scipy.special import j0
 
-from largeq.assemble import build_problem
+from largeq.operators.problem import build_problem
 from largeq.engines.propagate import evolve
-from largeq.planner import MemoryRefusal
-from largeq.relax import RelaxOptions, resume_relaxation, run_relaxation
+from largeq.workflows.planning import MemoryRefusal
+from largeq.workflows.relax import RelaxOptions, resume_relaxation, run_relaxation
 from largeq.reports.store import read_results
-from largeq.scenario import parse_scenario
+from largeq.scenario.spec import parse_scenario
 
 
 def scenario(**over):
@@ -234,7 +234,7 @@ def test_sigkill_then_resume_reproduces_uninterrupted_run(tmp_path, symmetry):
 
 
 def parse_scenario_file(path):
-    from largeq.scenario import load_scenario
+    from largeq.scenario.spec import load_scenario
 
     return load_scenario(path)
 

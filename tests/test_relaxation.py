@@ -1,15 +1,11 @@
-"""Tests of largeq.analysis.relaxation on synthetic curves and one exact quench."""
+"""Tests of largeq.analysis.curves on synthetic curves and one exact quench."""
 
 import numpy as np
 import pytest
 import scipy.signal
 
-from largeq.analysis.relaxation import (
-    analyse_curve,
-    integrated_autocorrelation_time,
-    running_average,
-    window_mean,
-)
+from largeq.analysis.curves import (analyse_curve, integrated_autocorrelation_time, running_average,
+                                    window_mean)
 from largeq.engines.exact import diagonalize, quench_exact
 
 from ._exact_models import mixed_field_ising, site_op

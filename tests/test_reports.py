@@ -16,7 +16,7 @@ import h5py
 import numpy as np
 import pytest
 
-from largeq.progress import progress_bar, progress_enabled
+from largeq.reports.progress import progress_bar, progress_enabled
 from largeq.reports.checkpoint import (
     CheckpointCorruptError,
     CheckpointMismatchError,

@@ -12,14 +12,8 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from largeq.scenario import (
-    Scenario,
-    ScenarioError,
-    load_scenario,
-    parse_scenario,
-    scenario_to_dict,
-    scenario_to_toml,
-)
+from largeq.scenario.spec import (Scenario, ScenarioError, load_scenario, parse_scenario, scenario_to_dict,
+                                  scenario_to_toml)
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -357,7 +351,7 @@ EXAMPLE_NAMES = ["neel_j1j2.toml", "ising_tilted.toml", "xx_neel.toml", "disorde
 
 @pytest.mark.parametrize("name", EXAMPLE_NAMES)
 def test_examples_load_and_copies_agree(name):
-    packaged = resources.files("largeq") / "examples_data" / name
+    packaged = resources.files("largeq.scenario") / "builtin" / name
     with resources.as_file(packaged) as p:
         s = load_scenario(p)
     assert s.title
@@ -367,7 +361,7 @@ def test_examples_load_and_copies_agree(name):
 
 
 def test_main_example_content():
-    with resources.as_file(resources.files("largeq") / "examples_data" / "neel_j1j2.toml") as p:
+    with resources.as_file(resources.files("largeq.scenario") / "builtin" / "neel_j1j2.toml") as p:
         s = load_scenario(p)
     assert s.n_sites == 16 and s.model.name == "j1j2_ring" and s.model.param("j2") == 0.3
     assert s.time.n_points == 201 and s.time.t_max == 20.0

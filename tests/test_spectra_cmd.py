@@ -18,12 +18,12 @@ import numpy as np
 import pytest
 
 from largeq import cli
-from largeq.assemble import build_problem
-from largeq.planner import MemoryRefusal
+from largeq.operators.problem import build_problem
+from largeq.workflows.planning import MemoryRefusal
 from largeq.reports.checkpoint import CHECKPOINT_NAME, load_checkpoint
 from largeq.reports.store import read_results
-from largeq.scenario import parse_scenario
-from largeq.spectra import SpectraOptions, resume_spectra, run_spectra
+from largeq.scenario.spec import parse_scenario
+from largeq.workflows.spectra import SpectraOptions, resume_spectra, run_spectra
 
 
 def ring(L=10, j2=0.3, **over):

@@ -5,15 +5,15 @@ import json
 import pytest
 
 from largeq.cli import main, resolve_scenario
-from largeq.planner import MemoryRefusal
-from largeq.sweep import SweepOptions, check_tasks_fit, run_sweep, task_forecast
+from largeq.workflows.planning import MemoryRefusal
+from largeq.workflows.sweep import SweepOptions, check_tasks_fit, run_sweep, task_forecast
 
 SIZES = [8, 10, 12]
 OPTS = SweepOptions(target=16, thermal=False)
 
 
 def _short(L=None):
-    from largeq.scenario import parse_scenario, scenario_to_dict
+    from largeq.scenario.spec import parse_scenario, scenario_to_dict
 
     s = resolve_scenario("neel_j1j2")
     d = scenario_to_dict(s)

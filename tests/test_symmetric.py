@@ -12,19 +12,19 @@ from math import comb
 import numpy as np
 import pytest
 
-from largeq.basis import magnetization_basis
+from largeq.basis.spaces import magnetization_basis
 from largeq.engines.bounds import spectral_bounds
 from largeq.engines.exact import diagonalize
 from largeq.engines.kpm import chebyshev_moments
 from largeq.engines.propagate import evolve
-from largeq.operators import PauliOperator
-from largeq.pauli import PauliSum, pauli_string
-from largeq.sector_counts import orbit_count, sector_dimension
-from largeq.states import basis_state
-from largeq.symmetric import GroupSpec, orbit_representatives, sector_labels, symmetric_sector
-from largeq.symmetric_kernels import min_rotation, min_rotation_naive
-from largeq.symmetric_ops import (CrossSectorDiagonal, SymmetricOperator, evolve_split, expand_to_magnetization,
-                                  split_basis_state, stabiliser_average)
+from largeq.operators.pauli_operator import PauliOperator
+from largeq.model.pauli import PauliSum, pauli_string
+from largeq.basis.counting import orbit_count, sector_dimension
+from largeq.basis.states import basis_state
+from largeq.basis.sectors import GroupSpec, orbit_representatives, sector_labels, symmetric_sector
+from largeq.basis._sector_kernels import min_rotation, min_rotation_naive
+from largeq.operators.sector_operator import (CrossSectorDiagonal, SymmetricOperator, evolve_split,
+                                              expand_to_magnetization, split_basis_state, stabiliser_average)
 
 
 def ring(L, j1=1.0, j2=0.3, d1=1.0, d2=1.0, hz=0.0, xx_only=False):
@@ -328,8 +328,8 @@ def test_stored_matrix_expectation_matches_matrix_free():
     # the stored-matrix operator must give the same <x|H|x> as the matrix-free one (and as CSR)
     import numpy as np
 
-    from largeq.symmetric import symmetric_sector
-    from largeq.symmetric_ops import SymmetricOperator
+    from largeq.basis.sectors import symmetric_sector
+    from largeq.operators.sector_operator import SymmetricOperator
     sys_path_bench = __import__("sys").path
     sys_path_bench.insert(0, str(__import__("pathlib").Path(__file__).resolve().parents[1] / "benchmarks"))
     from _common import j1j2_ring

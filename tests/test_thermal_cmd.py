@@ -20,11 +20,11 @@ import pytest
 import scipy.optimize
 
 from largeq import cli
-from largeq.assemble import build_problem
-from largeq.planner import MemoryRefusal
+from largeq.operators.problem import build_problem
+from largeq.workflows.planning import MemoryRefusal
 from largeq.reports.store import read_results
-from largeq.scenario import parse_scenario
-from largeq.thermal import ThermalOptions, default_beta_grid, run_thermal
+from largeq.scenario.spec import parse_scenario
+from largeq.workflows.thermal import ThermalOptions, default_beta_grid, run_thermal
 
 
 def ring(L=10):

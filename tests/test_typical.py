@@ -265,10 +265,10 @@ def test_validation(xx12):
 
 def test_with_largeq_operators():
     """The engines on largeq's own matrix-free operators (fused kernel path) agree with CSR."""
-    from largeq.basis import full_basis
+    from largeq.basis.spaces import full_basis
     from largeq.engines.bounds import spectral_bounds
-    from largeq.operators import pauli_operator
-    from largeq.pauli import pauli_string
+    from largeq.operators.pauli_operator import pauli_operator
+    from largeq.model.pauli import pauli_string
 
     L = 8
     terms = [pauli_string(L, {j: "Z", (j + 1) % L: "Z"}, 1.0) for j in range(L)]

@@ -55,7 +55,7 @@ def _check_name(name) -> str:
 
 
 def _numba_evolve(op, psi0, times, bounds=None, tol=1e-10, on_output=None, **kw):
-    from ..engines.propagate import evolve
+    from largeq.engines.propagate import evolve
 
     return evolve(op, psi0, times, method="chebyshev", bounds=bounds, tol=tol, block=1, on_output=on_output, **kw)
 
@@ -72,8 +72,8 @@ def get_backend(name: str = "numba") -> Backend:
     """
     name = _check_name(name)
     if name == "numba":
-        from ..engines.kpm import chebyshev_moments
-        from ..operators import PauliOperator
+        from largeq.engines.kpm import chebyshev_moments
+        from largeq.operators.pauli_operator import PauliOperator
 
         return Backend("numba", PauliOperator, _numba_evolve, chebyshev_moments)
     try:

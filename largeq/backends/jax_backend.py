@@ -47,11 +47,11 @@ import jax.numpy as jnp  # noqa: E402
 from jax import lax  # noqa: E402
 from jax.sharding import Mesh, NamedSharding, PartitionSpec  # noqa: E402
 
-from ..basis import Basis  # noqa: E402
-from ..engines.bounds import SpectralBounds, spectral_bounds  # noqa: E402
-from ..engines.kpm import chebyshev_scale  # noqa: E402
-from ..engines.propagate import EvolutionStats, _validate_common, chebyshev_coefficients  # noqa: E402
-from ..pauli import PauliSum  # noqa: E402
+from largeq.basis.spaces import Basis  # noqa: E402
+from largeq.engines.bounds import SpectralBounds, spectral_bounds  # noqa: E402
+from largeq.engines.kpm import chebyshev_scale  # noqa: E402
+from largeq.engines.propagate import EvolutionStats, _validate_common, chebyshev_coefficients  # noqa: E402
+from largeq.model.pauli import PauliSum  # noqa: E402
 
 __all__ = ["JaxPauliOperator", "evolve_jax", "chebyshev_moments_jax", "chebyshev_step_jax", "make_mesh"]
 

@@ -14,10 +14,10 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..vectors import axpy, norm, vdot
+from largeq.operators.vectors import axpy, norm, vdot
 from scipy.linalg import eigh_tridiagonal
 
-from .linalg import fused_update
+from largeq.operators.linalg import fused_update
 
 __all__ = ["SpectralBounds", "spectral_bounds", "lanczos_tridiagonal"]
 
@@ -72,7 +72,7 @@ class SpectralBounds:
         return (self.e_max - self.e_min) / (2.0 - eps), self.center
 
 
-# Level-1 vector operations live in largeq.vectors (compiled, thread-count independent).
+# Level-1 vector operations live in largeq.operators.vectors (compiled, thread-count independent).
 _axpy = axpy
 _vdot = vdot
 _norm = norm

@@ -31,8 +31,8 @@ from typing import Callable
 import numpy as np
 import scipy.fft
 
-from ..vectors import axpy, vdot
-from .linalg import apply_into, fused_update, result_dtype
+from largeq.operators.vectors import axpy, vdot
+from largeq.operators.linalg import apply_into, fused_update, result_dtype
 
 __all__ = [
     "SpectralDensity",
@@ -417,7 +417,7 @@ def density_of_states(
     done_moments : ndarray (k, n_moments), moments of vectors 0..k-1 already computed
     vector_kind : 'gaussian' or 'phase' (random phases; random signs if dtype is real)
     """
-    from .typical import random_state  # local import: typical builds on this module
+    from largeq.engines.typical import random_state  # local import: typical builds on this module
 
     n_moments = _check_n_moments(n_moments)
     if int(n_vectors) != n_vectors or n_vectors < 1:

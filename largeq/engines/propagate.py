@@ -30,8 +30,8 @@ import numpy as np
 from scipy.linalg import eigh_tridiagonal
 from scipy.special import gammaln, jv
 
-from .bounds import SpectralBounds, _axpy, _check_op, _norm, _vdot, spectral_bounds
-from .linalg import fused_update
+from largeq.engines.bounds import SpectralBounds, _axpy, _check_op, _norm, _vdot, spectral_bounds
+from largeq.operators.linalg import fused_update
 
 __all__ = [
     "EvolutionStats",

@@ -32,9 +32,9 @@ import scipy.interpolate
 import scipy.optimize
 import scipy.special
 
-from ..vectors import norm, vdot
-from .kpm import _apply_series, apply_chebyshev_series, chebyshev_scale
-from .linalg import apply_into, result_dtype
+from largeq.operators.vectors import norm, vdot
+from largeq.engines.kpm import _apply_series, apply_chebyshev_series, chebyshev_scale
+from largeq.operators.linalg import apply_into, result_dtype
 
 __all__ = [
     "random_state",

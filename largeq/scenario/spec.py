@@ -552,7 +552,7 @@ def parse_scenario(data: Any, *, source: str = "<dict>") -> Scenario:
         On any malformed or inconsistent entry; the message names the field path, the bad
         value and what is allowed.
     """
-    from . import presets as _presets  # local import: presets imports this module
+    from largeq.scenario import presets as _presets
 
     ctx = _Ctx(source)
     data = ctx.table(data, "(top level)")

@@ -32,20 +32,21 @@ from pathlib import Path
 import numpy as np
 import scipy.interpolate
 
-from . import __version__
-from .assemble import build_problem, spin_conventions
-from .engines.bounds import spectral_bounds
-from .engines.linalg import apply_into
-from .engines.typical import canonical_averages, microcanonical_average, solve_beta
-from .planner import MemoryForecast, available_bytes, check_fits, format_bytes, kpm_forecast
-from .progress import progress_bar
-from .reports import html, plots
-from .reports.store import (Quantity, atomic_write_text, make_run_folder, package_versions, run_metadata,
-                            write_results, write_summary)
-from .cli import UsageError
-from .scenario import Scenario, scenario_to_toml
-from .spectra import BOUNDS_SEED, sector_note, state_vector, vector_dtype
-from .vectors import vdot
+from largeq import __version__
+from largeq.operators.problem import build_problem, spin_conventions
+from largeq.engines.bounds import spectral_bounds
+from largeq.operators.linalg import apply_into
+from largeq.engines.typical import canonical_averages, microcanonical_average, solve_beta
+from largeq.workflows.planning import MemoryForecast, available_bytes, check_fits, format_bytes, kpm_forecast
+from largeq.reports.progress import progress_bar
+from largeq.reports import html
+from largeq.reports import plots
+from largeq.reports.store import (Quantity, atomic_write_text, make_run_folder, package_versions,
+                                  run_metadata, write_results, write_summary)
+from largeq.cli import UsageError
+from largeq.scenario.spec import Scenario, scenario_to_toml
+from largeq.workflows.spectra import BOUNDS_SEED, sector_note, state_vector, vector_dtype
+from largeq.operators.vectors import vdot
 
 __all__ = ["ThermalOptions", "ThermalRun", "run_thermal", "default_beta_grid", "register"]
 
@@ -468,7 +469,7 @@ def _report(problem, folder: Path, s: dict) -> None:
 # ---------------------------------------------------------------------------- command line
 def register(subparsers) -> None:
     """Add ``largeq thermal`` to the command line."""
-    from .cli import add_scenario_arguments
+    from largeq.cli import add_scenario_arguments
 
     p = subparsers.add_parser("thermal", help="canonical and microcanonical values at the initial state's energy "
                                               "(thermal pure quantum states); saved as a run folder")
@@ -490,7 +491,7 @@ def register(subparsers) -> None:
 
 
 def cmd_thermal(args) -> int:
-    from .cli import resolve_scenario
+    from largeq.cli import resolve_scenario
 
     options = ThermalOptions(vectors=args.vectors, betas=tuple(args.betas) if args.betas else None,
                              window=args.window, seed=args.seed, progress=args.progress)

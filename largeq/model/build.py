@@ -12,8 +12,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .pauli import PauliSum, empty
-from .scenario import Scenario, _range_pairs
+from largeq.model.pauli import PauliSum, empty
+from largeq.scenario.spec import Scenario, _range_pairs
 
 __all__ = [
     "Observable",

@@ -2,7 +2,7 @@
 
 ``PauliOperator(pauli_sum, basis)`` prepares small lookup tables once (a few MB at most,
 independent of the vector length) and applies the operator through the compiled kernels of
-``largeq.kernels``.  No matrix is stored.  For small dimensions ``to_csr`` and ``to_dense``
+``largeq.operators._kernels``.  No matrix is stored.  For small dimensions ``to_csr`` and ``to_dense``
 assemble the same matrix explicitly (used in tests and the exact engine).
 """
 
@@ -12,10 +12,10 @@ import numpy as np
 import scipy.sparse as sp
 from scipy.sparse.linalg import LinearOperator
 
-from . import kernels
-from .vectors import threads_for
-from .basis import Basis
-from .pauli import PauliSum
+from largeq.operators import _kernels as kernels
+from largeq.operators.vectors import threads_for
+from largeq.basis.spaces import Basis
+from largeq.model.pauli import PauliSum
 
 __all__ = ["PauliOperator", "pauli_operator", "fused_arguments"]
 

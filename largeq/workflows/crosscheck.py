@@ -1,7 +1,7 @@
 """``largeq crosscheck``: the large-L estimators against exact diagonalization at small L.
 
 For each chain length L (``scenario.with_length(L)``) whose state's symmetric subspace fits a dense
-diagonalization, compute exactly (``largeq.equilibration.exact_equilibration``) and by the estimators
+diagonalization, compute exactly (``largeq.analysis.equilibration.exact_equilibration``) and by the estimators
 that also work past the exact-diagonalization wall, and compare:
 
 * d_eff: KPM estimate (``estimate_deff``) and the survival-probability plateau vs exact 1 / sum p_E^2;
@@ -26,21 +26,22 @@ from pathlib import Path
 
 import numpy as np
 
-from . import __version__
-from .analysis.equilibrium import GOE_R, POISSON_R
-from .analysis.relaxation import analyse_curve
-from .assemble import build_problem, spin_conventions
-from .engines.kpm import kernel_factors, reconstruct_cumulative
-from .engines.propagate import evolve
-from .equilibration import (DenseLimitError, default_bounds, estimate_deff, exact_equilibration,
-                            exact_thermal_values, thermal_values)
-from .progress import progress_bar
-from .reports import html, plots
-from .reports.store import (Quantity, atomic_write_text, make_run_folder, package_versions, run_metadata,
-                            write_results, write_summary)
-from .scenario import scenario_to_toml
-from .symmetry_blocks import symmetry_group
-from .vectors import vdot
+from largeq import __version__
+from largeq.analysis.bounds import GOE_R, POISSON_R
+from largeq.analysis.curves import analyse_curve
+from largeq.operators.problem import build_problem, spin_conventions
+from largeq.engines.kpm import kernel_factors, reconstruct_cumulative
+from largeq.engines.propagate import evolve
+from largeq.analysis.equilibration import (DenseLimitError, default_bounds, estimate_deff,
+                                           exact_equilibration, exact_thermal_values, thermal_values)
+from largeq.reports.progress import progress_bar
+from largeq.reports import html
+from largeq.reports import plots
+from largeq.reports.store import (Quantity, atomic_write_text, make_run_folder, package_versions,
+                                  run_metadata, write_results, write_summary)
+from largeq.scenario.spec import scenario_to_toml
+from largeq.basis.blocks import symmetry_group
+from largeq.operators.vectors import vdot
 
 __all__ = ["CrosscheckOptions", "crosscheck_size", "run_crosscheck", "format_table", "ks_distances", "register"]
 
@@ -373,7 +374,7 @@ def run_crosscheck(scenario, sizes, folder=None, options: CrosscheckOptions | No
 
 # ------------------------------------------------------------------------------------------------ command
 def cmd_crosscheck(args) -> int:
-    from .cli import UsageError, resolve_scenario
+    from largeq.cli import UsageError, resolve_scenario
 
     scenario = resolve_scenario(args.scenario, args.sites)
     sizes = args.sizes or [scenario.n_sites]
@@ -389,7 +390,7 @@ def cmd_crosscheck(args) -> int:
 
 
 def register(subparsers) -> None:
-    from .cli import add_scenario_arguments
+    from largeq.cli import add_scenario_arguments
 
     p = subparsers.add_parser("crosscheck", help="check the d_eff, equilibrium, fluctuation and thermal estimators "
                                                  "against exact diagonalization at small sizes")

@@ -11,12 +11,12 @@ from functools import cached_property
 
 import numpy as np
 
-from . import model
-from .basis import Basis, choose_basis
-from .operators import PauliOperator
-from .pauli import PauliSum
-from .scenario import Scenario
-from .states import product_state
+from largeq.model import build as model
+from largeq.basis.spaces import Basis, choose_basis
+from largeq.operators.pauli_operator import PauliOperator
+from largeq.model.pauli import PauliSum
+from largeq.scenario.spec import Scenario
+from largeq.basis.states import product_state
 
 __all__ = ["Problem", "build_problem", "spin_conventions"]
 

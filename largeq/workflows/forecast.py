@@ -6,7 +6,7 @@ For the scenario at L sites:
   in it (the distribution of the number of up spins of a product state is Poisson-binomial: the product over
   sites of (q_j + p_j x), p_j = |up amplitude|^2), and the basis largeq would actually use;
 * memory per vector and in total for the exact engine (dense, state's symmetric subspace estimated as
-  dim / largest stabiliser), Chebyshev and Lanczos evolution and KPM (``largeq.planner``), with a measured
+  dim / largest stabiliser), Chebyshev and Lanczos evolution and KPM (``largeq.workflows.planning``), with a measured
   interpreter baseline instead of the planner's fixed allowance when calibrated;
 * throughput: a short measurement on this machine at a calibration length L_c <= L of the same parity
   (the largest with dimension <= ``CALIBRATION_DIM``, same sector structure): seconds per product
@@ -34,9 +34,10 @@ from pathlib import Path
 
 import numpy as np
 
-from .planner import (COMPLEX, OVERHEAD_BYTES, MemoryForecast, available_bytes, evolution_forecast, exact_forecast,
-                      format_bytes, kpm_forecast, table_bytes_estimate)
-from .scenario import Scenario
+from largeq.workflows.planning import (COMPLEX, OVERHEAD_BYTES, MemoryForecast, available_bytes,
+                                       evolution_forecast, exact_forecast, format_bytes, kpm_forecast,
+                                       table_bytes_estimate)
+from largeq.scenario.spec import Scenario
 
 __all__ = ["sector_weights", "calibrate", "Calibration", "predict_evolution", "measure_evolution",
            "measure_baseline_rss", "forecast", "format_forecast", "register", "CALIBRATION_DIM"]
@@ -53,7 +54,7 @@ def sector_weights(scenario: Scenario) -> dict:
     Returns ``{'conserves_magnetization', 'sectors': [{'up_spins', 'dimension', 'weight'}], 'full_dimension'}``;
     sectors with weight below 1e-15 are left out.
     """
-    from . import model
+    from largeq.model import build as model
 
     L = scenario.n_sites
     H = model.hamiltonian(scenario)
@@ -90,7 +91,7 @@ def _timeit(fn, min_seconds: float = 0.25, min_reps: int = 3) -> float:
 
 def calibration_length(scenario: Scenario, L: int, max_dim: int = CALIBRATION_DIM) -> int:
     """Largest L_c <= L with L_c = L mod 2 (patterns keep their meaning) and basis dimension <= max_dim."""
-    from .assemble import build_problem
+    from largeq.operators.problem import build_problem
 
     best = None
     for Lc in range(L, 3, -2):
@@ -108,9 +109,9 @@ def calibration_length(scenario: Scenario, L: int, max_dim: int = CALIBRATION_DI
 
 def calibrate(scenario: Scenario, L: int, *, max_dim: int = CALIBRATION_DIM) -> Calibration:
     """Time products, vector updates and observable evaluations at the calibration length (see module doc)."""
-    from .assemble import build_problem
-    from .engines.bounds import spectral_bounds
-    from .vectors import axpy, vdot
+    from largeq.operators.problem import build_problem
+    from largeq.engines.bounds import spectral_bounds
+    from largeq.operators.vectors import axpy, vdot
 
     Lc = calibration_length(scenario, L, max_dim)
     problem = build_problem(scenario.with_length(Lc))
@@ -140,7 +141,7 @@ def calibrate(scenario: Scenario, L: int, *, max_dim: int = CALIBRATION_DIM) -> 
 
 # --------------------------------------------------------------------------------------------- prediction
 def _block(dim, L, n_times, available, block):
-    from .relax import choose_block
+    from largeq.workflows.relax import choose_block
 
     return int(block) if block else choose_block(dim, L, n_times, available, "chebyshev")
 
@@ -148,8 +149,8 @@ def _block(dim, L, n_times, available, block):
 def predict_evolution(scenario: Scenario, cal: Calibration, *, block: int | None = None,
                       available: int | None = None) -> dict:
     """Products and wall time of the relax job's evolution at the scenario's length (see the module doc)."""
-    from .assemble import build_problem
-    from .engines.propagate import chebyshev_order
+    from largeq.operators.problem import build_problem
+    from largeq.engines.propagate import chebyshev_order
 
     problem = build_problem(scenario)
     D, L = int(problem.basis.dim), problem.n_sites
@@ -194,11 +195,11 @@ def predict_kpm(dim_scale_product: float, n_moments: int = 256, n_vectors: int =
 
 def measure_evolution(scenario: Scenario, *, block: int | None = None, available: int | None = None) -> dict:
     """Run what :func:`predict_evolution` predicts (bounds + evolution + observables at every output)."""
-    from .assemble import build_problem
-    from .engines.bounds import spectral_bounds
-    from .engines.propagate import evolve
-    from .planner import PeakRSS
-    from .vectors import vdot
+    from largeq.operators.problem import build_problem
+    from largeq.engines.bounds import spectral_bounds
+    from largeq.engines.propagate import evolve
+    from largeq.workflows.planning import PeakRSS
+    from largeq.operators.vectors import vdot
 
     with PeakRSS() as peak:
         problem = build_problem(scenario)
@@ -229,10 +230,10 @@ def measure_evolution(scenario: Scenario, *, block: int | None = None, available
 def measure_baseline_rss(scenario: Scenario, sites: int = 8) -> int:
     """Peak RSS (bytes) of a fresh interpreter that runs a tiny evolution of this scenario (imports, compiled
     kernels, libraries: everything but the large vectors)."""
-    from .scenario import scenario_to_toml
+    from largeq.scenario.spec import scenario_to_toml
 
     code = ("import json, sys; from largeq.scenario import parse_scenario; import tomllib; "
-            "from largeq.forecast import measure_evolution; "
+            "from largeq.workflows.forecast import measure_evolution; "
             "s = parse_scenario(tomllib.loads(sys.stdin.read())); "
             "print(json.dumps(measure_evolution(s, block=1)))")
     small = scenario.with_length(sites)
@@ -243,7 +244,7 @@ def measure_baseline_rss(scenario: Scenario, sites: int = 8) -> int:
 
 
 def _short_time(scenario: Scenario, t_max: float = 0.5, points: int = 3) -> Scenario:
-    from .scenario import parse_scenario, scenario_to_dict
+    from largeq.scenario.spec import parse_scenario, scenario_to_dict
 
     d = scenario_to_dict(scenario)
     d["time"] = {"t_max": t_max, "points": points}
@@ -252,8 +253,8 @@ def _short_time(scenario: Scenario, t_max: float = 0.5, points: int = 3) -> Scen
 
 # --------------------------------------------------------------------------------------------- forecast
 def _from_sweep(folder, L: int) -> dict:
-    from .fits import LinearFit, SizeTrend, extrapolate
-    from .reports.store import read_summary
+    from largeq.analysis.fits import LinearFit, SizeTrend, extrapolate
+    from largeq.reports.store import read_summary
 
     s = read_summary(Path(folder) / "summary.json")
     out = {}
@@ -275,7 +276,7 @@ def forecast(scenario: Scenario, *, from_sweep=None, calibrate_here: bool = True
     """Everything ``largeq forecast`` prints and saves (a plain dict; see the module docstring)."""
     import os
 
-    from .assemble import build_problem
+    from largeq.operators.problem import build_problem
 
     problem = build_problem(scenario)
     L, D = problem.n_sites, int(problem.basis.dim)
@@ -400,7 +401,7 @@ def _human_time(s: float) -> str:
 
 
 def register(subparsers) -> None:
-    from .cli import add_scenario_arguments
+    from largeq.cli import add_scenario_arguments
 
     p = subparsers.add_parser("forecast", help="sectors, memory and predicted wall time of a scenario at a target length")
     add_scenario_arguments(p)
@@ -412,8 +413,8 @@ def register(subparsers) -> None:
 
 
 def cmd_forecast(args) -> int:
-    from .cli import UsageError, resolve_scenario
-    from .reports.store import atomic_write_text, make_run_folder, write_summary
+    from largeq.cli import UsageError, resolve_scenario
+    from largeq.reports.store import atomic_write_text, make_run_folder, write_summary
 
     if args.sites is None:
         raise UsageError("forecast needs --sites L (the target chain length)")

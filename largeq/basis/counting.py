@@ -83,7 +83,7 @@ def sector_dimension(n_sites: int, n_up: int, *, momentum: int | None = 0, refle
                      flip: int | None = None) -> int:
     """Dimension of the sector (momentum m, reflection parity, flip parity) of the n_up sector.
 
-    Same arguments as :func:`largeq.symmetric.symmetric_sector`; ``None`` leaves a generator out.
+    Same arguments as :func:`largeq.basis.sectors.symmetric_sector`; ``None`` leaves a generator out.
     """
     L = int(n_sites)
     if flip is not None and 2 * n_up != L:

@@ -15,7 +15,7 @@ from typing import NamedTuple
 
 import numpy as np
 
-from .relaxation import window_mean
+from largeq.analysis.curves import window_mean
 
 __all__ = [
     "POISSON_R",

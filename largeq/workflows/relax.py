@@ -18,20 +18,21 @@ from types import SimpleNamespace
 
 import numpy as np
 
-from . import __version__
-from .analysis.relaxation import analyse_curve
-from .assemble import Problem, build_problem, spin_conventions
-from .engines.bounds import SpectralBounds, spectral_bounds
-from .engines.propagate import evolve
-from .equilibrium_summary import equilibration_report
-from .planner import available_bytes, check_fits, evolution_forecast, format_bytes
-from .progress import progress_bar
-from .reports import html, plots
-from .reports.checkpoint import CHECKPOINT_NAME, Checkpointer, load_checkpoint
-from .reports.store import (Quantity, atomic_write_text, make_run_folder, package_versions, run_metadata,
-                            write_results, write_summary)
-from .scenario import Scenario, load_scenario, scenario_to_toml
-from .vectors import vdot
+from largeq import __version__
+from largeq.analysis.curves import analyse_curve
+from largeq.operators.problem import Problem, build_problem, spin_conventions
+from largeq.engines.bounds import SpectralBounds, spectral_bounds
+from largeq.engines.propagate import evolve
+from largeq.workflows.equilibration_step import equilibration_report
+from largeq.workflows.planning import available_bytes, check_fits, evolution_forecast, format_bytes
+from largeq.reports.progress import progress_bar
+from largeq.reports import html
+from largeq.reports import plots
+from largeq.reports.checkpoint import CHECKPOINT_NAME, Checkpointer, load_checkpoint
+from largeq.reports.store import (Quantity, atomic_write_text, make_run_folder, package_versions,
+                                  run_metadata, write_results, write_summary)
+from largeq.scenario.spec import Scenario, load_scenario, scenario_to_toml
+from largeq.operators.vectors import vdot
 
 __all__ = ["RelaxOptions", "RelaxRun", "run_relaxation", "resume_relaxation", "choose_block"]
 
@@ -156,7 +157,7 @@ def sector_plan(problem: Problem, options: RelaxOptions, available: int, n_times
     evaluated across sectors exactly) and the method is Chebyshev.  The sector matrices are
     stored (CSR) when that fits in a third of the memory; otherwise the products stay matrix-free.
     """
-    from .symmetric_ops import split_basis_state
+    from largeq.operators.sector_operator import split_basis_state
 
     sym, start = problem.symmetries, problem.start
     if options.symmetry == "off" or problem.scenario.numerics.method != "chebyshev":
@@ -315,7 +316,7 @@ class _SectorRecorder(_Recorder):
 
 def _execute_sectors(problem: Problem, text: str, folder: Path, times, plan, options, *, resume: bool) -> RelaxRun:
     """The relaxation run with the state split over symmetry sectors, each evolved on its own."""
-    from .symmetric_ops import CrossSectorDiagonal, SymmetricOperator
+    from largeq.operators.sector_operator import CrossSectorDiagonal, SymmetricOperator
 
     scenario = problem.scenario
     fp = fingerprint(text)
@@ -499,7 +500,7 @@ def _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, m
 
 
 def _field_values(problem):
-    from .model import field_values
+    from largeq.model.build import field_values
 
     return {axis: np.asarray(v, float) for axis, v in field_values(problem.scenario).items()}
 

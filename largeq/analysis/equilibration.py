@@ -1,6 +1,6 @@
 """Equilibration quantities of a problem: exact (dense) and estimated (KPM, typicality).
 
-Three library functions on a :class:`~largeq.assemble.Problem` (hbar = 1; energies in the scenario's
+Three library functions on a :class:`~largeq.operators.problem.Problem` (hbar = 1; energies in the scenario's
 units; observables are Pauli operators):
 
 * :func:`exact_equilibration` -- full diagonalization: weights p_E, d_eff = 1 / sum_E p_E^2 (degenerate
@@ -21,7 +21,7 @@ units; observables are Pauli operators):
   basis (small sizes), for the cross-check.
 
 Symmetric subspace.  The initial state's dynamics never leaves range(P_lambda), the subspace fixed by
-the symmetry operations that leave psi invariant up to a phase (``largeq.symmetry_blocks``).  All exact
+the symmetry operations that leave psi invariant up to a phase (``largeq.basis.blocks``).  All exact
 quench quantities computed there equal those of the whole basis (eigenspace projectors commute with
 P_lambda), so ``exact_equilibration`` diagonalizes only that subspace (``reduce=True``, default), and
 ``estimate_deff`` uses the density of states of that subspace: with the DOS of the whole basis the
@@ -39,14 +39,15 @@ import numpy as np
 import scipy.linalg
 import scipy.optimize
 
-from .analysis.equilibrium import (GOE_R, POISSON_R, DeffEstimate, SpacingRatio, amplitude_eta,
-                                   deff_from_densities, fluctuation_bound, survival_plateau)
-from .engines.bounds import spectral_bounds
-from .engines.exact import ExactQuench, diagonalize, quench_exact
-from .engines.kpm import (chebyshev_moments, chebyshev_scale, kernel_factors, local_density, reconstruct_cumulative, reconstruct_density)
-from .engines.typical import canonical_averages, microcanonical_average, random_state, solve_beta
-from .symmetry_blocks import (StateSubspace, SymmetryGroup, resolved_level_ratio, state_subspace,
-                              symmetry_blocks, symmetry_group)
+from largeq.analysis.bounds import (GOE_R, POISSON_R, DeffEstimate, SpacingRatio, amplitude_eta,
+                                    deff_from_densities, fluctuation_bound, survival_plateau)
+from largeq.engines.bounds import spectral_bounds
+from largeq.engines.exact import ExactQuench, diagonalize, quench_exact
+from largeq.engines.kpm import (chebyshev_moments, chebyshev_scale, kernel_factors, local_density,
+                                reconstruct_cumulative, reconstruct_density)
+from largeq.engines.typical import canonical_averages, microcanonical_average, random_state, solve_beta
+from largeq.basis.blocks import (StateSubspace, SymmetryGroup, resolved_level_ratio, state_subspace,
+                                 symmetry_blocks, symmetry_group)
 
 __all__ = [
     "DenseLimitError",

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit, prange
 
-from .basis import Basis
+from largeq.basis.spaces import Basis
 
 __all__ = ["product_state", "basis_state", "random_state"]
 

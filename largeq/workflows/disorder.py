@@ -8,7 +8,7 @@ realisations later keeps the first ones: SeedSequence children do not depend on 
 Statistics.  For every number x_k over realisations k = 1..N: the mean, the standard error of the mean
 std(x, ddof=1) / sqrt(N) and the spread std(x, ddof=1) (sample-to-sample fluctuation); curves point by point.
 
-``run_disorder_relaxation`` runs ``largeq.relax.run_relaxation`` once per realisation (sub-folders
+``run_disorder_relaxation`` runs ``largeq.workflows.relax.run_relaxation`` once per realisation (sub-folders
 ``realization-000`` ...; a rerun skips realisations already finished) and writes the aggregate
 ``results.h5``, ``summary.json``, ``relaxation.png`` and ``report.html`` in the parent folder.
 """
@@ -21,11 +21,12 @@ from pathlib import Path
 
 import numpy as np
 
-from . import __version__
-from .reports import html, plots
-from .reports.store import (Quantity, atomic_write_text, make_run_folder, package_versions, read_results,
-                            read_summary, run_metadata, write_results, write_summary)
-from .scenario import Scenario, ScenarioError, parse_scenario, scenario_to_dict, scenario_to_toml
+from largeq import __version__
+from largeq.reports import html
+from largeq.reports import plots
+from largeq.reports.store import (Quantity, atomic_write_text, make_run_folder, package_versions,
+                                  read_results, read_summary, run_metadata, write_results, write_summary)
+from largeq.scenario.spec import Scenario, ScenarioError, parse_scenario, scenario_to_dict, scenario_to_toml
 
 __all__ = ["is_disordered", "base_seed", "realization_seeds", "with_seed", "aggregate", "aggregate_curves",
            "DisorderRun", "run_disorder_relaxation", "realization_folder"]
@@ -124,7 +125,7 @@ def run_disorder_relaxation(scenario: Scenario, n_realizations: int, folder=None
     Each realisation is a complete ``relax`` run folder; realisations already finished in ``folder``
     (their ``summary.json`` exists and their recorded seed matches) are not run again.
     """
-    from .relax import RelaxOptions, run_relaxation
+    from largeq.workflows.relax import RelaxOptions, run_relaxation
 
     options = RelaxOptions() if options is None else options
     seed0 = base_seed(scenario)

@@ -14,8 +14,8 @@ S_r = {g : g r = r}),
     |r~> = sum_{s in orbit} conj(chi(g_s)) |s> / sqrt(|orbit|),  g_s r = s,  |orbit| = |G| / |S_r|.
 
 Arithmetic is real when chi is real (k = 0 or pi, any parities), complex otherwise.
-Matrix elements and lookups are in :mod:`largeq.symmetric_kernels`; operators and the
-splitting of states in :mod:`largeq.symmetric_ops`.
+Matrix elements and lookups are in :mod:`largeq.basis._sector_kernels`; operators and the
+splitting of states in :mod:`largeq.operators.sector_operator`.
 """
 
 from __future__ import annotations
@@ -24,13 +24,13 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from . import symmetric_kernels as sk
-from .basis import MAX_SITES, Basis, magnetization_basis
+from largeq.basis import _sector_kernels as sk
+from largeq.basis.spaces import MAX_SITES, Basis, magnetization_basis
 
 __all__ = ["GroupSpec", "SymmetricSector", "orbit_representatives", "symmetric_sector", "sector_labels",
            "LOOKUP_MODES"]
 
-#: lookup method name -> kernel mode (see largeq.symmetric_kernels)
+#: lookup method name -> kernel mode (see largeq.basis._sector_kernels)
 LOOKUP_MODES = {"bisect": 0, "block": 1, "rank": 2}
 
 
@@ -222,7 +222,7 @@ def symmetric_sector(n_sites: int, up_spins: int, *, momentum: int | None = 0, r
     reflection, flip : +1, -1 or None
         Parities of R and F; None leaves that generator out of the group.
     lookup : {"block", "bisect", "rank"}
-        How a representative's position is found (see largeq.symmetric_kernels).
+        How a representative's position is found (see largeq.basis._sector_kernels).
     orbits : Orbits, optional
         Representatives of the same group, reused between sectors (saves the enumeration pass).
     """

@@ -10,9 +10,9 @@ from __future__ import annotations
 
 import numpy as np
 
-from .analysis.equilibrium import fluctuation_bound
-from .equilibration import (DenseLimitError, estimate_deff, exact_equilibration, exact_thermal_values,
-                            thermal_values)
+from largeq.analysis.bounds import fluctuation_bound
+from largeq.analysis.equilibration import (DenseLimitError, estimate_deff, exact_equilibration,
+                                           exact_thermal_values, thermal_values)
 
 __all__ = ["MODES", "ESTIMATE_MAX_DIM", "equilibration_report"]
 

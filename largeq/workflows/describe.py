@@ -2,9 +2,10 @@
 
 from __future__ import annotations
 
-from .assemble import build_problem, spin_conventions
-from .planner import available_bytes, evolution_forecast, exact_forecast, format_bytes, kpm_forecast
-from .scenario import Scenario
+from largeq.operators.problem import build_problem, spin_conventions
+from largeq.workflows.planning import (available_bytes, evolution_forecast, exact_forecast, format_bytes,
+                                       kpm_forecast)
+from largeq.scenario.spec import Scenario
 
 __all__ = ["describe_scenario"]
 
@@ -66,8 +67,8 @@ def describe_scenario(scenario: Scenario) -> dict:
         *[f"      {k:17s} {format_bytes(f.total_bytes):>11s}   {f.note}" for k, f in forecasts.items()],
         f"  memory available now: {format_bytes(avail)}",
     ]
-    from .planner import MemoryRefusal
-    from .relax import RelaxOptions, sector_plan
+    from largeq.workflows.planning import MemoryRefusal
+    from largeq.workflows.relax import RelaxOptions, sector_plan
 
     try:
         plan = sector_plan(problem, RelaxOptions(), avail, times.size)

@@ -14,7 +14,7 @@ For each chain length L (and each disorder realisation when asked) one task meas
 
 Each finished task is saved at once (``sizes/L016.json`` + ``sizes/L016.h5``; with realisations
 ``L016-r003``); a rerun of the same command in the same folder skips tasks already saved for the same scenario
-and options.  The table (``table.csv`` and ``results.h5``), the fits of ``largeq.fits`` (ln d_eff = a + s L,
+and options.  The table (``table.csv`` and ``results.h5``), the fits of ``largeq.analysis.fits`` (ln d_eff = a + s L,
 ln sigma_A = b - kappa L, <A>_inf linear in 1/L), the extrapolation to ``--target`` with 1-sigma bands, the
 plots against L and 1/L, ``summary.json`` and ``report.html`` are rewritten from all saved tasks.
 
@@ -37,12 +37,14 @@ from pathlib import Path
 
 import numpy as np
 
-from . import __version__
-from .planner import (MemoryRefusal, PeakRSS, available_bytes, evolution_forecast, exact_forecast, format_bytes,
-                      kpm_forecast)
-from .reports import html, plots
-from .reports.store import (Quantity, atomic_write_text, make_run_folder, package_versions, run_metadata, write_results, write_summary)
-from .scenario import Scenario, scenario_to_toml
+from largeq import __version__
+from largeq.workflows.planning import (MemoryRefusal, PeakRSS, available_bytes, evolution_forecast,
+                                       exact_forecast, format_bytes, kpm_forecast)
+from largeq.reports import html
+from largeq.reports import plots
+from largeq.reports.store import (Quantity, atomic_write_text, make_run_folder, package_versions,
+                                  run_metadata, write_results, write_summary)
+from largeq.scenario.spec import Scenario, scenario_to_toml
 
 __all__ = ["SweepOptions", "measure_size", "task_forecast", "run_sweep", "sweep_table", "fit_trends",
            "make_client", "register"]
@@ -110,7 +112,7 @@ def _counting(op):
 
 
 def _block(dim: int, L: int, n_times: int, memory: int) -> int:
-    from .relax import choose_block
+    from largeq.workflows.relax import choose_block
 
     return choose_block(dim, L, n_times, memory, "chebyshev")
 
@@ -133,7 +135,7 @@ def task_forecast(scenario: Scenario, options: SweepOptions, memory: int | None 
     not attempted when even that exceeds ``max_dim``) and the symmetry permutation tables (4 L x dim int64
     at most, only below the size where the exact engine builds them).
     """
-    from .assemble import build_problem
+    from largeq.operators.problem import build_problem
 
     problem = build_problem(scenario)
     dim, L = int(problem.basis.dim), problem.n_sites
@@ -155,11 +157,12 @@ def measure_size(scenario: Scenario, options: SweepOptions, *, realization: int 
 
     Returns a dict: plain numbers (the table row) plus ``_arrays`` (curves for the per-size HDF5 file).
     """
-    from .analysis.relaxation import analyse_curve
-    from .assemble import build_problem
-    from .engines.propagate import evolve
-    from .equilibration import DenseLimitError, default_bounds, estimate_deff, exact_equilibration, thermal_values
-    from .vectors import vdot
+    from largeq.analysis.curves import analyse_curve
+    from largeq.operators.problem import build_problem
+    from largeq.engines.propagate import evolve
+    from largeq.analysis.equilibration import (DenseLimitError, default_bounds, estimate_deff,
+                                               exact_equilibration, thermal_values)
+    from largeq.operators.vectors import vdot
 
     t0 = time.perf_counter()
     with PeakRSS() as peak:
@@ -345,11 +348,11 @@ def check_tasks_fit(forecasts: dict, limits: dict[str, int], fraction: float = 0
 
 # --------------------------------------------------------------------------------------------- the sweep
 def _task_list(scenario: Scenario, sizes, options: SweepOptions) -> list[tuple[str, Scenario, int | None]]:
-    from .disorder import base_seed, is_disordered, realization_seeds, with_seed
+    from largeq.workflows.disorder import base_seed, is_disordered, realization_seeds, with_seed
 
     tasks = []
     if options.realizations > 1 and not is_disordered(scenario):
-        from .scenario import ScenarioError
+        from largeq.scenario.spec import ScenarioError
 
         raise ScenarioError("realizations", options.realizations, "1 for a scenario without random fields",
                             scenario.source)
@@ -439,7 +442,7 @@ def _num(x):
 
 def sweep_table(sizes, tasks, rows: dict, observables) -> list[dict]:
     """One row per size (realisations averaged: mean and standard error), flat keys for CSV."""
-    from .disorder import aggregate
+    from largeq.workflows.disorder import aggregate
 
     table = []
     for L in sizes:
@@ -491,7 +494,7 @@ def fit_trends(table: list[dict], observables, target: int | None) -> dict:
     about the line (chi^2 / dof).  Fits need at least 3 sizes.  The d_eff fit uses only exact values when at
     least 3 sizes have them.
     """
-    from .fits import extrapolate, fit_inverse_size, fit_log_deff, fit_log_sigma
+    from largeq.analysis.fits import extrapolate, fit_inverse_size, fit_log_deff, fit_log_sigma
 
     out = {"trends": {}, "extrapolations": {}, "notes": []}
     if len(table) < 3:
@@ -675,14 +678,14 @@ def register(subparsers) -> None:
     p.add_argument("--kpm-everywhere", action="store_true", help="also estimate d_eff by KPM where it is exact")
     p.add_argument("--seed", type=int, default=20260303, metavar="S", help="seed of the random vectors")
     p.set_defaults(func=cmd_sweep)
-    # the planner command lives in largeq.forecast; it is registered here (cli.COMMAND_MODULES names this module)
-    from . import forecast
+    # the planner command lives in largeq.workflows.forecast; it is registered here (cli.COMMAND_MODULES names this module)
+    from largeq.workflows import forecast
 
     forecast.register(subparsers)
 
 
 def cmd_sweep(args) -> int:
-    from .cli import UsageError, resolve_scenario
+    from largeq.cli import UsageError, resolve_scenario
 
     if args.realizations < 1:
         raise UsageError("--realizations must be >= 1")

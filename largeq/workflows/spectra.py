@@ -31,18 +31,19 @@ from pathlib import Path
 
 import numpy as np
 
-from . import __version__
-from .assemble import Problem, build_problem, spin_conventions
-from .engines.bounds import SpectralBounds, spectral_bounds
-from .engines.kpm import counting_function, density_of_states, dos_on_grid, local_density
-from .planner import MemoryForecast, available_bytes, check_fits, format_bytes, kpm_forecast
-from .progress import progress_bar
-from .reports import html, plots
-from .reports.checkpoint import CHECKPOINT_NAME, Checkpointer, load_checkpoint
-from .reports.store import (Quantity, atomic_write_text, make_run_folder, package_versions, read_summary,
-                            run_metadata, write_results, write_summary)
-from .cli import UsageError
-from .scenario import Scenario, load_scenario, scenario_to_toml
+from largeq import __version__
+from largeq.operators.problem import Problem, build_problem, spin_conventions
+from largeq.engines.bounds import SpectralBounds, spectral_bounds
+from largeq.engines.kpm import counting_function, density_of_states, dos_on_grid, local_density
+from largeq.workflows.planning import MemoryForecast, available_bytes, check_fits, format_bytes, kpm_forecast
+from largeq.reports.progress import progress_bar
+from largeq.reports import html
+from largeq.reports import plots
+from largeq.reports.checkpoint import CHECKPOINT_NAME, Checkpointer, load_checkpoint
+from largeq.reports.store import (Quantity, atomic_write_text, make_run_folder, package_versions,
+                                  read_summary, run_metadata, write_results, write_summary)
+from largeq.cli import UsageError
+from largeq.scenario.spec import Scenario, load_scenario, scenario_to_toml
 
 __all__ = ["SpectraOptions", "SpectraRun", "run_spectra", "resume_spectra", "register", "sector_note",
            "BOUNDS_SEED", "KERNELS"]
@@ -444,7 +445,7 @@ def _plots_and_report(problem, folder: Path, ldos, dos, s) -> None:
 # ---------------------------------------------------------------------------- command line
 def register(subparsers) -> None:
     """Add ``largeq spectra`` to the command line."""
-    from .cli import add_scenario_arguments
+    from largeq.cli import add_scenario_arguments
 
     p = subparsers.add_parser("spectra", help="energy-weight distribution (LDOS) of the initial state and the "
                                               "density of states of its sector, by KPM; saved as a run folder")
@@ -465,7 +466,7 @@ def register(subparsers) -> None:
 
 
 def cmd_spectra(args) -> int:
-    from .cli import UsageError, resolve_scenario
+    from largeq.cli import UsageError, resolve_scenario
 
     options = SpectraOptions(moments=args.moments, vectors=args.vectors, kernel=args.kernel, seed=args.seed,
                              progress=args.progress)

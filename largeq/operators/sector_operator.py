@@ -1,7 +1,7 @@
 """Operators on symmetry sectors, splitting of states into sectors, cross-sector observables.
 
 * :class:`SymmetricOperator` -- a G-invariant Pauli sum (the Hamiltonian, a translation-invariant
-  observable) on one :class:`~largeq.symmetric.SymmetricSector`, matrix-free, with the same
+  observable) on one :class:`~largeq.basis.sectors.SymmetricSector`, matrix-free, with the same
   ``fused_update`` / ``expectation`` / ``to_csr`` protocol as :class:`largeq.operators.PauliOperator`.
 * :func:`split_basis_state` -- the components P_chi |b> of a z-basis product state in every sector
   it touches (weights |S_r| / |G| summing to one).
@@ -20,11 +20,11 @@ import numpy as np
 import scipy.sparse as sp
 from scipy.sparse.linalg import LinearOperator
 
-from . import symmetric_kernels as sk
-from .operators import fused_arguments
-from .pauli import PauliSum
-from .symmetric import GroupSpec, SymmetricSector, orbit_representatives, symmetric_sector
-from .vectors import threads_for, vdot
+from largeq.basis import _sector_kernels as sk
+from largeq.operators.pauli_operator import fused_arguments
+from largeq.model.pauli import PauliSum
+from largeq.basis.sectors import GroupSpec, SymmetricSector, orbit_representatives, symmetric_sector
+from largeq.operators.vectors import threads_for, vdot
 
 __all__ = ["SymmetricOperator", "StoredSectorMatrix", "is_invariant", "split_basis_state", "SectorComponent", "CrossSectorDiagonal",
            "evolve_split", "stabiliser_average", "expand_to_magnetization", "project_from_magnetization"]
@@ -498,8 +498,8 @@ def evolve_split_lockstep(H: PauliSum, comps: list[SectorComponent], note: str, 
     Each sector uses its own Chebyshev run, driven one output step at a time through ``evolve``'s resume
     interface (``start_index``), so the curves need only the current state of every sector.
     """
-    from .engines.bounds import spectral_bounds
-    from .engines.propagate import evolve
+    from largeq.engines.bounds import spectral_bounds
+    from largeq.engines.propagate import evolve
 
     times = np.asarray(times, float)
     ops = [SymmetricOperator(H, c.sector, check=False) for c in comps]

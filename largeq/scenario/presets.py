@@ -23,7 +23,7 @@ Presets
 
 from __future__ import annotations
 
-from .scenario import Coupling, Field
+from largeq.scenario.spec import Coupling, Field
 
 __all__ = ["expand", "PRESET_DOCS"]
 

@@ -10,7 +10,7 @@ the same ``hi`` form one contiguous *block* of the state vector:
 ``lo_rank[lo]`` is the rank of ``lo`` among the ``n_lo``-bit integers with the same number of
 up spins (the identity for the full space).  Both tables have 2**(L/2) entries, so a lookup
 is O(1): two table reads and an add, no hash map and no search.  The compiled kernels in
-``largeq.kernels`` use the blocks directly: terms acting only on high sites move whole
+``largeq.operators._kernels`` use the blocks directly: terms acting only on high sites move whole
 contiguous blocks, terms acting only on low sites stay inside one block.
 """
 

@@ -9,11 +9,11 @@ import sys
 from importlib import resources
 from pathlib import Path
 
-from . import __version__
+from largeq import __version__
 
-EXAMPLES_PACKAGE = "largeq.examples_data"
+EXAMPLES_PACKAGE = "largeq.scenario.builtin"
 #: modules that add their own sub-commands through ``register(subparsers)``
-COMMAND_MODULES = ("largeq.spectra", "largeq.thermal", "largeq.crosscheck", "largeq.sweep")
+COMMAND_MODULES = ("largeq.workflows.spectra", "largeq.workflows.thermal", "largeq.workflows.crosscheck", "largeq.workflows.sweep")
 
 
 class UsageError(Exception):
@@ -27,7 +27,7 @@ def builtin_examples() -> dict[str, Path]:
 
 def resolve_scenario(arg: str, sites: int | None = None):
     """A scenario from a file path or the name of a built-in example, optionally resized to ``sites``."""
-    from .scenario import load_scenario
+    from largeq.scenario.spec import load_scenario
 
     path = Path(arg)
     if not path.exists():
@@ -45,7 +45,7 @@ def resolve_scenario(arg: str, sites: int | None = None):
 
 # ---------------------------------------------------------------------------- commands
 def cmd_examples(args) -> int:
-    from .scenario import load_scenario
+    from largeq.scenario.spec import load_scenario
 
     for name, path in sorted(builtin_examples().items()):
         s = load_scenario(path)
@@ -54,7 +54,7 @@ def cmd_examples(args) -> int:
 
 
 def cmd_describe(args) -> int:
-    from .describe import describe_scenario
+    from largeq.workflows.describe import describe_scenario
 
     scenario = resolve_scenario(args.scenario, args.sites)
     info = describe_scenario(scenario)
@@ -66,7 +66,7 @@ def cmd_describe(args) -> int:
 
 
 def cmd_relax(args) -> int:
-    from .relax import RelaxOptions, resume_relaxation, run_relaxation
+    from largeq.workflows.relax import RelaxOptions, resume_relaxation, run_relaxation
 
     options = RelaxOptions(checkpoint_seconds=args.checkpoint_every, progress=args.progress, block=args.block,
                            equilibration=args.equilibration, seed=args.seed, symmetry=args.symmetry)
@@ -80,7 +80,7 @@ def cmd_relax(args) -> int:
         if args.realizations < 1:
             raise UsageError("--realizations must be >= 1")
         if args.realizations > 1:
-            from .disorder import run_disorder_relaxation
+            from largeq.workflows.disorder import run_disorder_relaxation
 
             run = run_disorder_relaxation(resolve_scenario(args.scenario, args.sites), args.realizations, args.out,
                                           options, echo=print)
@@ -190,9 +190,9 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv=None) -> int:
-    from .planner import MemoryRefusal
-    from .reports.checkpoint import CheckpointError
-    from .scenario import ScenarioError
+    from largeq.workflows.planning import MemoryRefusal
+    from largeq.reports.checkpoint import CheckpointError
+    from largeq.scenario.spec import ScenarioError
 
     parser = build_parser()
     args = parser.parse_args(argv)

@@ -110,7 +110,7 @@ def symmetry_group(problem, *, h_csr=None, check: bool = True) -> SymmetryGroup:
 
     Parameters
     ----------
-    problem : largeq.assemble.Problem
+    problem : largeq.operators.problem.Problem
     h_csr : scipy sparse matrix, optional
         H on the basis (built from ``problem.operator.to_csr()`` when not given).
     check : bool
@@ -384,7 +384,7 @@ def resolved_level_ratio(problem, *, which: str | dict = "trivial", central_frac
         The spacing ratio of the block's eigenvalues (central fraction of the spectrum), the block
         (its label and dimension) and the group (which symmetries were resolved).
     """
-    from .analysis.equilibrium import level_spacing_ratio
+    from largeq.analysis.bounds import level_spacing_ratio
 
     group = group or symmetry_group(problem)
     blocks = symmetry_blocks(problem, group=group, which=which)
