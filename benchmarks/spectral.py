@@ -37,7 +37,7 @@ VECTORS = 4
 
 
 def _one_kpm(L: int) -> dict:
-    from largeq.cli import resolve_scenario
+    from largeq.scenario import resolve_scenario
     from largeq.workflows.planning import kpm_forecast
     from largeq.workflows.spectra import SpectraOptions, run_spectra
 
@@ -57,7 +57,7 @@ def _one_kpm(L: int) -> dict:
 def _one_dense(L: int) -> dict:
     import numpy as np
 
-    from largeq.cli import resolve_scenario
+    from largeq.scenario import resolve_scenario
     from largeq.operators.problem import build_problem
 
     problem = build_problem(resolve_scenario("neel_j1j2", L))

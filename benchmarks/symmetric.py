@@ -32,14 +32,19 @@ def _observable(L):
                     np.array([(-1.0) ** j for j in range(L)]))
 
 
+#: output times per Chebyshev expansion of the main command's sector path (largeq.workflows.relax)
+RELAX_SECTOR_BLOCK = 8
+
+
 def run_symmetric(L: int, n_times: int) -> dict:
-    from largeq.operators.sector_operator import evolve_split
+    from largeq.engines.sector_evolution import evolve_split
 
     H = j1j2_ring(L)
     neel = sum(1 << j for j in range(1, L, 2))
     times = np.linspace(0.0, 20.0, n_times)
     t0 = time.perf_counter()
-    res = evolve_split(H, neel, times, {"staggered": _observable(L)}, reflection=True, spin_flip=True)
+    res = evolve_split(H, neel, times, {"staggered": _observable(L)}, reflection=True, spin_flip=True,
+                       block=RELAX_SECTOR_BLOCK)
     wall = time.perf_counter() - t0
     return {"L": L, "mode": "sectors", "seconds": wall, "peak_bytes": peak_rss_bytes(),
             "dims": [s["dimension"] for s in res["sectors"]], "final": float(res["curves"]["staggered"][-1]),

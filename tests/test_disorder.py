@@ -5,7 +5,8 @@ import json
 import numpy as np
 import pytest
 
-from largeq.cli import main, resolve_scenario
+from largeq.cli import main
+from largeq.scenario import resolve_scenario
 from largeq.workflows.disorder import (aggregate, aggregate_curves, base_seed, is_disordered,
                                        realization_seeds, with_seed)
 

@@ -11,12 +11,13 @@ import scipy.linalg
 
 from largeq.analysis.bounds import GOE_R, POISSON_R
 from largeq.operators.problem import build_problem
-from largeq.cli import resolve_scenario
+from largeq.scenario import resolve_scenario
 from largeq.engines.propagate import evolve
 from largeq.analysis.equilibration import (DenseLimitError, default_bounds, estimate_deff,
                                            exact_equilibration, exact_thermal_values, integrability_warning)
 from largeq.scenario.spec import parse_scenario, scenario_to_dict
-from largeq.basis.blocks import resolved_level_ratio, symmetry_blocks, symmetry_group
+from largeq.analysis.equilibration import resolved_level_ratio
+from largeq.basis.blocks import symmetry_blocks, symmetry_group
 
 
 def make(example, L, start=None, model=None, boundary=None):

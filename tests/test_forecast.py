@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 
 from largeq.basis.spaces import full_basis
-from largeq.cli import resolve_scenario
+from largeq.scenario import resolve_scenario
 from largeq.workflows.forecast import (calibrate, forecast, measure_evolution, predict_evolution,
                                        sector_weights)
 from largeq.scenario.spec import parse_scenario, scenario_to_dict, scenario_to_toml

@@ -220,7 +220,7 @@ def test_table_memory_is_tiny_compared_with_a_vector():
 @pytest.mark.parametrize("basis_kind", ["chosen", "full"])
 def test_every_preset_matrix_free_equals_csr(example, basis_kind):
     from largeq.operators.problem import build_problem
-    from largeq.cli import resolve_scenario
+    from largeq.scenario import resolve_scenario
 
     sc = resolve_scenario(example, 10)
     problem = build_problem(sc)

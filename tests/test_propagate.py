@@ -496,7 +496,7 @@ def test_many_small_steps_do_not_trip_the_norm_check():
     # regression: the norm check once compared against the initial norm, so round-off
     # accumulated over ~100 steps at tol = 1e-10 raised a spurious "bounds" error
     from largeq.operators.problem import build_problem
-    from largeq.cli import resolve_scenario
+    from largeq.scenario import resolve_scenario
 
     problem = build_problem(resolve_scenario("neel_j1j2", 10))
     psi, _ = problem.initial_vector()

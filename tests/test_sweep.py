@@ -4,7 +4,8 @@ import json
 
 import pytest
 
-from largeq.cli import main, resolve_scenario
+from largeq.cli import main
+from largeq.scenario import resolve_scenario
 from largeq.workflows.planning import MemoryRefusal
 from largeq.workflows.sweep import SweepOptions, check_tasks_fit, run_sweep, task_forecast
 

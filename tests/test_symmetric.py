@@ -23,8 +23,9 @@ from largeq.basis.counting import orbit_count, sector_dimension
 from largeq.basis.states import basis_state
 from largeq.basis.sectors import GroupSpec, orbit_representatives, sector_labels, symmetric_sector
 from largeq.basis._sector_kernels import min_rotation, min_rotation_naive
-from largeq.operators.sector_operator import (CrossSectorDiagonal, SymmetricOperator, evolve_split,
-                                              expand_to_magnetization, split_basis_state, stabiliser_average)
+from largeq.engines.sector_evolution import evolve_split
+from largeq.operators.sector_operator import (CrossSectorDiagonal, SymmetricOperator, expand_to_magnetization,
+                                              split_basis_state, stabiliser_average)
 
 
 def ring(L, j1=1.0, j2=0.3, d1=1.0, d2=1.0, hz=0.0, xx_only=False):

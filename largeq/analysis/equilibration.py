@@ -39,15 +39,16 @@ import numpy as np
 import scipy.linalg
 import scipy.optimize
 
-from largeq.analysis.bounds import (GOE_R, POISSON_R, DeffEstimate, SpacingRatio, amplitude_eta,
+from largeq.analysis.bounds import (GOE_R, POISSON_R, DeffEstimate, SpacingRatio, amplitude_eta, level_spacing_ratio,
                                     deff_from_densities, fluctuation_bound, survival_plateau)
 from largeq.engines.bounds import spectral_bounds
 from largeq.engines.exact import ExactQuench, diagonalize, quench_exact
 from largeq.engines.kpm import (chebyshev_moments, chebyshev_scale, kernel_factors, local_density,
                                 reconstruct_cumulative, reconstruct_density)
 from largeq.engines.typical import canonical_averages, microcanonical_average, random_state, solve_beta
-from largeq.basis.blocks import (StateSubspace, SymmetryGroup, resolved_level_ratio, state_subspace,
+from largeq.basis.blocks import (StateSubspace, SymmetryGroup, state_subspace,
                                  symmetry_blocks, symmetry_group)
+from largeq.constants import BOUNDS_SEED, MAX_DENSE_DIM
 
 __all__ = [
     "DenseLimitError",
@@ -67,9 +68,30 @@ __all__ = [
 ]
 
 #: Fixed seed of the Lanczos start vector for spectral bounds (bounds are reproducible).
-BOUNDS_SEED = 20260101
 #: Above this many (group elements x basis states) the symmetry permutations are not built.
 MAX_PERMUTATION_ENTRIES = 200_000_000
+
+
+def resolved_level_ratio(problem, *, which: str | dict = "trivial", central_fraction: float = 0.5,
+                         max_dim: int = MAX_DENSE_DIM, group: SymmetryGroup | None = None):
+    """<r> in one fully resolved block (default k = 0 and all parities +1).
+
+    Returns
+    -------
+    (SpacingRatio, Block, SymmetryGroup)
+        The spacing ratio of the block's eigenvalues (central fraction of the spectrum), the block
+        (its label and dimension) and the group (which symmetries were resolved).
+    """
+    group = group or symmetry_group(problem)
+    blocks = symmetry_blocks(problem, group=group, which=which)
+    if not blocks:
+        raise ValueError(f"the block {which!r} is empty for this basis")
+    blk = blocks[0]
+    if blk.dim > max_dim:
+        raise ValueError(f"block {blk.label} has dimension {blk.dim:,} > max_dim = {max_dim:,}")
+    h = problem.operator.to_csr()
+    e = scipy.linalg.eigvalsh(blk.hamiltonian(h), check_finite=False)
+    return level_spacing_ratio(e, central_fraction=central_fraction), blk, group
 
 
 def default_bounds(op):
@@ -226,7 +248,7 @@ class ExactEquilibration:
         }
 
 
-def exact_equilibration(problem, *, max_dim: int = 13000, reduce: bool = True, psi=None,
+def exact_equilibration(problem, *, max_dim: int = MAX_DENSE_DIM, reduce: bool = True, psi=None,
                         level_statistics: bool = True, group: SymmetryGroup | None = None,
                         observables=None) -> ExactEquilibration:
     """Exact d_eff, <A>_inf, sigma_A^2, fluctuation bounds, N(0) and <r> by dense diagonalization.
@@ -732,7 +754,7 @@ class ExactThermal:
     energies: np.ndarray = field(repr=False)
 
 
-def exact_thermal_values(problem, energy: float, *, width: float | None = None, max_dim: int = 13000,
+def exact_thermal_values(problem, energy: float, *, width: float | None = None, max_dim: int = MAX_DENSE_DIM,
                          group: SymmetryGroup | None = None) -> ExactThermal:
     """Canonical and microcanonical values from full diagonalization, block by block.
 

@@ -1,8 +1,10 @@
 """jax accelerator backend: the matrix-free Pauli-sum product and the Chebyshev engines in jax.
 
-Importing this module imports jax and switches on 64-bit arrays for the whole process
-(``jax.config.update("jax_enable_x64", True)``): without it basis states and indices would be
-int32 and every float64 request would silently become float32.
+Importing this module imports jax but changes none of its settings.  Every entry point (the operator,
+the propagators, the moments, the mesh) first calls :func:`enable_x64`, which switches on 64-bit arrays
+for the process (``jax.config.update("jax_enable_x64", True)``): without it basis states and indices
+would be int32 and every float64 request would silently become float32.  Callers that mix their own jax
+code with largeq's can call :func:`enable_x64` explicitly and early.
 
 Product (the "pull" form, one gather per x_mask group, no scatter)::
 
@@ -40,20 +42,24 @@ from typing import Any, Callable
 import numpy as np
 
 import jax
+import jax.numpy as jnp
+from jax import lax
+from jax.sharding import Mesh, NamedSharding, PartitionSpec
 
-jax.config.update("jax_enable_x64", True)
+from largeq.basis.spaces import Basis
+from largeq.engines.bounds import SpectralBounds, spectral_bounds
+from largeq.engines.chebyshev import chebyshev_scale
+from largeq.engines.propagate import EvolutionStats, _validate_common, chebyshev_coefficients
+from largeq.model.pauli import PauliSum
 
-import jax.numpy as jnp  # noqa: E402
-from jax import lax  # noqa: E402
-from jax.sharding import Mesh, NamedSharding, PartitionSpec  # noqa: E402
+__all__ = ["JaxPauliOperator", "evolve_jax", "chebyshev_moments_jax", "chebyshev_step_jax", "make_mesh",
+           "enable_x64"]
 
-from largeq.basis.spaces import Basis  # noqa: E402
-from largeq.engines.bounds import SpectralBounds, spectral_bounds  # noqa: E402
-from largeq.engines.kpm import chebyshev_scale  # noqa: E402
-from largeq.engines.propagate import EvolutionStats, _validate_common, chebyshev_coefficients  # noqa: E402
-from largeq.model.pauli import PauliSum  # noqa: E402
 
-__all__ = ["JaxPauliOperator", "evolve_jax", "chebyshev_moments_jax", "chebyshev_step_jax", "make_mesh"]
+def enable_x64() -> None:
+    """Switch jax to 64-bit arrays for this process (idempotent; called by every entry point here)."""
+    if not jax.config.jax_enable_x64:
+        jax.config.update("jax_enable_x64", True)
 
 #: above this many off-diagonal x_mask groups the product loops over groups with
 #: ``lax.fori_loop`` instead of unrolling them in the traced program (compile time)
@@ -64,6 +70,7 @@ _AXIS = "rows"
 
 def make_mesh(n_devices: int | None = None, axis: str = _AXIS) -> Mesh:
     """A 1-d mesh over the first ``n_devices`` jax devices (all of them when None)."""
+    enable_x64()
     devs = jax.devices()
     n = len(devs) if n_devices is None else int(n_devices)
     if not 1 <= n <= len(devs):
@@ -246,6 +253,7 @@ class JaxPauliOperator:
 
     def __init__(self, pauli: PauliSum, basis: Basis, *, dtype=np.complex128, sharding=None,
                  unroll: bool | None = None):
+        enable_x64()
         if pauli.n_sites != basis.n_sites:
             raise ValueError(f"operator has {pauli.n_sites} sites but the basis has {basis.n_sites}")
         cdtype = np.dtype(dtype)
@@ -449,6 +457,7 @@ def chebyshev_step_jax(op: JaxPauliOperator, psi, dt: float, bounds: SpectralBou
     Returns (new psi, its norm, order, error bound); the order is that of
     :func:`largeq.engines.propagate.chebyshev_coefficients` (``order - 1`` products).
     """
+    enable_x64()
     c, err = chebyshev_coefficients(float(dt), bounds, tol)
     order = len(c)
     cdt = op.precision
@@ -493,6 +502,7 @@ def evolve_jax(op: JaxPauliOperator, psi0, times, bounds: SpectralBounds | None 
     input on each device when sharded).  The norm check allows ``2 tol + 1e-9`` relative drift
     in complex128 and ``max(2 tol + 1e-9, 1e-4)`` in complex64 (float32 rounding).
     """
+    enable_x64()
     t_start = time.perf_counter()
     if not isinstance(op, JaxPauliOperator):
         raise ValueError(f"op must be a JaxPauliOperator, got {type(op)!r}")
@@ -583,6 +593,7 @@ def chebyshev_moments_jax(op: JaxPauliOperator, v, n_moments: int, bounds, *, ep
     (``mu_2n = 2<phi_n|phi_n> - mu_0``, ``mu_2n+1 = 2<phi_n+1|phi_n> - mu_1``), ``n_moments // 2``
     products.  A real vector with a real operator stays real.  Returns float64 numpy moments.
     """
+    enable_x64()
     if isinstance(n_moments, bool) or int(n_moments) != n_moments or n_moments < 2:
         raise ValueError(f"n_moments must be an integer >= 2, got {n_moments!r}")
     if not isinstance(op, JaxPauliOperator):

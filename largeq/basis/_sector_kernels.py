@@ -28,7 +28,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit, prange
 
-from largeq.operators._kernels import popcount, zsign
+from largeq.basis._bits import popcount, zsign
 
 _CHUNKS = 256
 

@@ -31,8 +31,8 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
-import scipy.linalg
 import scipy.sparse as sp
+
 
 __all__ = [
     "SymmetryGroup",
@@ -43,7 +43,6 @@ __all__ = [
     "block_labels",
     "symmetry_blocks",
     "state_subspace",
-    "resolved_level_ratio",
 ]
 
 #: Relative tolerance of the check that a permutation commutes with H.
@@ -372,27 +371,3 @@ def state_subspace(problem, psi: np.ndarray, *, group: SymmetryGroup | None = No
     desc = (f"subspace of the initial state: {len(perms)} of {group.order} symmetry operations leave it "
             f"invariant up to a phase ({group.describe()}); dimension {q.shape[1]:,} of {problem.basis.dim:,}")
     return StateSubspace(q, len(perms), group.order, desc, small)
-
-
-def resolved_level_ratio(problem, *, which: str | dict = "trivial", central_fraction: float = 0.5,
-                         max_dim: int = 13000, group: SymmetryGroup | None = None):
-    """<r> in one fully resolved block (default k = 0 and all parities +1).
-
-    Returns
-    -------
-    (SpacingRatio, Block, SymmetryGroup)
-        The spacing ratio of the block's eigenvalues (central fraction of the spectrum), the block
-        (its label and dimension) and the group (which symmetries were resolved).
-    """
-    from largeq.analysis.bounds import level_spacing_ratio
-
-    group = group or symmetry_group(problem)
-    blocks = symmetry_blocks(problem, group=group, which=which)
-    if not blocks:
-        raise ValueError(f"the block {which!r} is empty for this basis")
-    blk = blocks[0]
-    if blk.dim > max_dim:
-        raise ValueError(f"block {blk.label} has dimension {blk.dim:,} > max_dim = {max_dim:,}")
-    h = problem.operator.to_csr()
-    e = scipy.linalg.eigvalsh(blk.hamiltonian(h), check_finite=False)
-    return level_spacing_ratio(e, central_fraction=central_fraction), blk, group

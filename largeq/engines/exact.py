@@ -30,6 +30,8 @@ import scipy.linalg
 import scipy.sparse
 import scipy.sparse.linalg
 
+from largeq.constants import MAX_DENSE_DIM
+
 __all__ = [
     "MAX_DENSE_DIM",
     "Spectrum",
@@ -40,9 +42,6 @@ __all__ = [
     "quench_exact",
     "quench_sectors",
 ]
-
-#: Largest sector dimension ``diagonalize`` accepts (about 2.7 GB per complex D x D matrix).
-MAX_DENSE_DIM = 13000
 
 #: Default gap tolerance relative to max(1, max |E|): ~4500 machine epsilons, well above the rounding of exact
 #: degenerate gaps (~1e-14 relative in the tests), small enough that accidental coincidences stay rare at D ~ 2000.

@@ -31,7 +31,9 @@ from typing import Callable
 import numpy as np
 import scipy.fft
 
-from largeq.operators.vectors import axpy, vdot
+from largeq.operators.vectors import vdot
+from largeq.engines.chebyshev import apply_chebyshev_series, check_vector, chebyshev_scale
+from largeq.engines.random_vectors import child_generators, random_state
 from largeq.operators.linalg import apply_into, fused_update, result_dtype
 
 __all__ = [
@@ -52,45 +54,6 @@ __all__ = [
 ]
 
 _KERNELS = ("jackson", "lorentz", "none")
-
-
-# --------------------------------------------------------------------------- scaling
-def chebyshev_scale(bounds, eps: float = 0.01) -> tuple[float, float]:
-    """Rescaling ``(a, b)`` that maps the spectrum into [-1, 1].
-
-    ``a = (E_max - E_min) / (2 - eps)``, ``b = (E_max + E_min) / 2`` (energy units).
-
-    Parameters
-    ----------
-    bounds : tuple (e_min, e_max) or object with ``e_min`` and ``e_max`` attributes
-        Bounds that enclose the whole spectrum of the operator (energy units).
-    eps : float
-        Safety margin, 0 < eps < 1; the spectrum then lies in [-1 + eps/2, 1 - eps/2].
-    """
-    if hasattr(bounds, "e_min") and hasattr(bounds, "e_max"):
-        e_min, e_max = float(bounds.e_min), float(bounds.e_max)
-    else:
-        try:
-            e_min, e_max = (float(x) for x in bounds)
-        except (TypeError, ValueError):
-            raise ValueError(
-                f"bounds must be (e_min, e_max) or have e_min/e_max attributes, got {bounds!r}"
-            ) from None
-    if not (np.isfinite(e_min) and np.isfinite(e_max)) or not e_max > e_min:
-        raise ValueError(f"bounds must be finite with e_max > e_min, got ({e_min}, {e_max})")
-    if not 0.0 < eps < 1.0:
-        raise ValueError(f"eps must lie in (0, 1), got {eps}")
-    return (e_max - e_min) / (2.0 - eps), 0.5 * (e_max + e_min)
-
-
-def _check_vector(op, v: np.ndarray, name: str = "v") -> np.ndarray:
-    v = np.asarray(v)
-    if v.ndim != 1:
-        raise ValueError(f"{name} must be a 1-d vector, got shape {v.shape}")
-    shape = getattr(op, "shape", None)
-    if shape is not None and (shape[0] != shape[1] or shape[1] != v.shape[0]):
-        raise ValueError(f"{name} has length {v.shape[0]} but the operator has shape {shape}")
-    return v
 
 
 def _check_n_moments(n_moments) -> int:
@@ -121,7 +84,7 @@ def chebyshev_moments(op, v: np.ndarray, n_moments: int, bounds, *, eps: float =
     numpy.ndarray of float64, shape (n_moments,)
     """
     n_moments = _check_n_moments(n_moments)
-    v = _check_vector(op, v)
+    v = check_vector(op, v)
     a, b = chebyshev_scale(bounds, eps)
     dtype = result_dtype(op, v)
     mu = np.empty(n_moments)
@@ -334,7 +297,7 @@ def local_density(
     n_moments = _check_n_moments(n_moments)
     if n_moments < 3:
         raise ValueError(f"n_moments must be >= 3 for the variance check, got {n_moments}")
-    psi = _check_vector(op, psi, "psi")
+    psi = check_vector(op, psi, "psi")
     a, b = chebyshev_scale(bounds, eps)
     g = kernel_factors(kernel, n_moments)
     npts = _n_points(n_points, n_moments)
@@ -400,7 +363,7 @@ def density_of_states(
     Error bars: standard error over the R vectors (std / sqrt(R)) of the per-vector densities,
     which shrinks like 1/sqrt(R D) relative to D.  Holds 3 full-size vectors.
 
-    Vector ``i`` is drawn from ``rng.spawn(n_vectors)[i]``, so a run resumed with
+    Vector ``i`` is drawn from child ``i`` of ``rng`` (:func:`~largeq.engines.random_vectors.child_generators`, the caller's generator is not advanced), so a run resumed with
     ``done_moments`` (the first k rows of an earlier ``vector_moments``) and a generator seeded
     the same way gives the same numbers as an uninterrupted run.
 
@@ -417,7 +380,6 @@ def density_of_states(
     done_moments : ndarray (k, n_moments), moments of vectors 0..k-1 already computed
     vector_kind : 'gaussian' or 'phase' (random phases; random signs if dtype is real)
     """
-    from largeq.engines.typical import random_state  # local import: typical builds on this module
 
     n_moments = _check_n_moments(n_moments)
     if int(n_vectors) != n_vectors or n_vectors < 1:
@@ -441,7 +403,7 @@ def density_of_states(
             )
         start = done_moments.shape[0]
         moments[:start] = done_moments
-    children = rng.spawn(int(n_vectors))
+    children = child_generators(rng, int(n_vectors))
     r = None
     for i in range(start, int(n_vectors)):
         r = random_state(dim, children[i], kind=vector_kind, dtype=dtype, out=r)
@@ -509,55 +471,3 @@ def counting_function(result: SpectralDensity, energies) -> np.ndarray:
     flat = theta.reshape(-1)
     sums = np.array([np.dot(c[1:] / n, np.sin(n * t)) for t in flat]).reshape(theta.shape)
     return out - 2.0 / np.pi * sums
-
-
-def apply_chebyshev_series(
-    op,
-    v: np.ndarray,
-    coeffs: np.ndarray,
-    bounds,
-    *,
-    eps: float = 0.01,
-    overwrite: bool = False,
-    work: np.ndarray | None = None,
-    out: np.ndarray | None = None,
-) -> np.ndarray:
-    """``w = sum_n coeffs[n] T_n(Ht) v`` with ``Ht = (H - b)/a`` (see :func:`chebyshev_scale`).
-
-    Costs ``len(coeffs) - 1`` products.  Holds 3 full-size vectors (the recursion pair and
-    the sum) besides ``v``; with ``overwrite=True`` ``v`` itself serves as the first recursion
-    vector (destroyed) and the function holds 2 more.  ``work`` and ``out`` may supply those
-    buffers (same shape and a dtype that can hold the result; distinct from ``v``).
-    """
-    a, b = chebyshev_scale(bounds, eps)
-    return _apply_series(op, v, coeffs, a, b, overwrite=overwrite, work=work, out=out)
-
-
-def _apply_series(op, v, coeffs, a, b, *, overwrite=False, work=None, out=None):
-    """:func:`apply_chebyshev_series` with the rescaling ``(a, b)`` given directly."""
-    coeffs = np.asarray(coeffs)
-    if coeffs.ndim != 1 or coeffs.size < 1:
-        raise ValueError(f"coeffs must be a non-empty 1-d array, got shape {coeffs.shape}")
-    v = _check_vector(op, v)
-    dtype = np.result_type(result_dtype(op, v), coeffs.dtype)
-    if overwrite and v.dtype == dtype and v.flags.writeable:
-        prev = v
-    else:
-        prev = np.array(v, dtype=dtype, copy=True)
-    cur = work if work is not None else np.empty_like(prev)
-    acc = out if out is not None else np.empty_like(prev)
-    for name, buf in (("work", cur), ("out", acc)):
-        if buf.shape != prev.shape or np.result_type(buf.dtype, dtype) != buf.dtype:
-            raise ValueError(f"{name} must have shape {prev.shape} and hold dtype {dtype}")
-        if buf is prev or np.may_share_memory(buf, prev):
-            raise ValueError(f"{name} must not share memory with v")
-    np.multiply(prev, coeffs[0], out=acc)
-    if coeffs.size == 1:
-        return acc
-    fused_update(op, prev, cur, 1.0 / a, -b / a, 0.0)
-    axpy(coeffs[1], cur, acc)
-    for n in range(2, coeffs.size):
-        fused_update(op, cur, prev, 2.0 / a, -2.0 * b / a, -1.0)
-        prev, cur = cur, prev
-        axpy(coeffs[n], cur, acc)
-    return acc

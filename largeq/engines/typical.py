@@ -33,7 +33,8 @@ import scipy.optimize
 import scipy.special
 
 from largeq.operators.vectors import norm, vdot
-from largeq.engines.kpm import _apply_series, apply_chebyshev_series, chebyshev_scale
+from largeq.engines.chebyshev import apply_chebyshev_series, apply_scaled_series, chebyshev_scale
+from largeq.engines.random_vectors import child_generators, random_state
 from largeq.operators.linalg import apply_into, result_dtype
 
 __all__ = [
@@ -50,59 +51,8 @@ __all__ = [
     "microcanonical_average",
 ]
 
-_KINDS = ("gaussian", "phase")
 _MAX_DAMPING = 5.0     # largest allowed shrink factor e^5 of one imaginary-time sub-step
 _MAX_Z = 200.0         # largest |tau a| per sub-step (bounds the series length, ~120 terms)
-
-
-# --------------------------------------------------------------------------- random states
-def random_state(
-    dim: int,
-    rng: np.random.Generator,
-    *,
-    kind: str = "gaussian",
-    dtype=complex,
-    normalize: bool = True,
-    out: np.ndarray | None = None,
-) -> np.ndarray:
-    """A random vector of length ``dim``; 1 full-size vector (written into ``out`` if given).
-
-    kind='gaussian': i.i.d. Gaussian entries with ``E|r_i|^2 = 1`` (complex: real and imaginary
-    parts of variance 1/2; real if ``dtype`` is real).  kind='phase': ``e^{2 pi i u}`` (random
-    signs if real).  With ``normalize`` the vector is scaled to unit norm (for Gaussian entries
-    this is a Haar-random state).
-    """
-    if int(dim) != dim or dim < 1:
-        raise ValueError(f"dim must be a positive integer, got {dim!r}")
-    if kind not in _KINDS:
-        raise ValueError(f"kind must be one of {_KINDS}, got {kind!r}")
-    if not isinstance(rng, np.random.Generator):
-        raise ValueError(f"rng must be a numpy.random.Generator, got {type(rng).__name__}")
-    dtype = np.dtype(dtype)
-    if dtype not in (np.dtype(np.complex128), np.dtype(np.float64)):
-        raise ValueError(f"dtype must be complex128 or float64, got {dtype}")
-    dim = int(dim)
-    if out is None:
-        out = np.empty(dim, dtype=dtype)
-    elif out.shape != (dim,) or out.dtype != dtype or not out.flags.c_contiguous:
-        raise ValueError(f"out must be a contiguous ({dim},) {dtype} array")
-    is_complex = dtype.kind == "c"
-    if kind == "gaussian":
-        flat = out.view(np.float64)
-        rng.standard_normal(out=flat)
-        if is_complex:
-            flat *= np.sqrt(0.5)
-    else:  # random phases / signs, in chunks so that no full-size temporary is made
-        chunk = 1 << 20
-        for s0 in range(0, dim, chunk):
-            u = rng.random(min(chunk, dim - s0))
-            if is_complex:
-                out[s0 : s0 + u.size] = np.exp(2j * np.pi * u)
-            else:
-                out[s0 : s0 + u.size] = np.where(u < 0.5, -1.0, 1.0)
-    if normalize:
-        out /= norm(out)
-    return out
 
 
 # --------------------------------------------------------------------------- stochastic trace
@@ -218,7 +168,7 @@ def _advance(op, bufs, tau, a, b, x_now, tol):
         z = -step * a
         coeffs = bessel_coefficients(z, tol * np.exp(-_MAX_DAMPING))
         state, work, spare = bufs
-        new = _apply_series(op, state, coeffs, a, b, overwrite=True, work=work, out=spare)
+        new = apply_scaled_series(op, state, coeffs, a, b, overwrite=True, work=work, out=spare)
         matvecs += coeffs.size - 1
         nrm = norm(new)
         if not (nrm > 0 and np.isfinite(nrm)):
@@ -401,7 +351,7 @@ def canonical_averages(
     e1 = np.empty((R, K))
     e2 = np.empty((R, K))
     vals = {name: np.empty((R, K)) for name in obs}
-    children = rng.spawn(R)
+    children = child_generators(rng, R)
     vdtype = np.dtype(dtype)
     work_dtype = np.result_type(vdtype, getattr(op, "dtype", np.float64))
     bufs = [np.empty(dim, dtype=work_dtype) for _ in range(3)]
@@ -607,7 +557,7 @@ def microcanonical_average(
     vdtype = np.dtype(dtype)
     work_dtype = np.result_type(vdtype, getattr(op, "dtype", np.float64))
     bufs = [np.empty(dim, dtype=work_dtype) for _ in range(3)]
-    children = rng.spawn(R)
+    children = child_generators(rng, R)
     norm2 = np.empty((R, 1))
     e1 = np.empty((R, 1))
     e2 = np.empty((R, 1))

@@ -23,23 +23,11 @@ from __future__ import annotations
 import numpy as np
 from numba import njit, prange
 
+from largeq.basis._bits import popcount, zsign
+
 _CHUNKS = 256  # work units of the parallel loop (each holds its own small scratch arrays)
 
 __all__ = ["fused_kernel", "expect_kernel", "csr_count_kernel", "csr_fill_kernel", "popcount", "zsign"]
-
-
-@njit(inline="always", cache=True)
-def popcount(v):
-    v = v - ((v >> 1) & 0x5555555555555555)
-    v = (v & 0x3333333333333333) + ((v >> 2) & 0x3333333333333333)
-    v = (v + (v >> 4)) & 0x0F0F0F0F0F0F0F0F
-    return ((v * 0x0101010101010101) >> 56) & 0xFF
-
-
-@njit(inline="always", cache=True)
-def zsign(z, b):
-    """(-1)^{popcount(z & ~b)}: +1 or -1."""
-    return 1 - 2 * (popcount(z & ~b) & 1)
 
 
 @njit(inline="always", cache=True)

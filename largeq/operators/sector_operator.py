@@ -27,7 +27,7 @@ from largeq.basis.sectors import GroupSpec, SymmetricSector, orbit_representativ
 from largeq.operators.vectors import threads_for, vdot
 
 __all__ = ["SymmetricOperator", "StoredSectorMatrix", "is_invariant", "split_basis_state", "SectorComponent", "CrossSectorDiagonal",
-           "evolve_split", "stabiliser_average", "expand_to_magnetization", "project_from_magnetization"]
+           "stabiliser_average", "expand_to_magnetization", "project_from_magnetization"]
 
 
 # --------------------------------------------------------------------------- invariance
@@ -444,82 +444,3 @@ def stabiliser_average(obs: PauliSum, bits: int, group: GroupSpec) -> tuple[Paul
     avg = (avg * (1.0 / count)).simplify()
     differs = not _same(_canon(avg), _canon(obs))
     return avg, differs
-
-
-# --------------------------------------------------------------------------- evolution
-def evolve_split(H: PauliSum, bits: int, times, observables: dict[str, PauliSum], *, translation: bool = True,
-                 reflection: bool = False, spin_flip: bool = False, lookup: str = "block", tol: float = 1e-10,
-                 store_matrix: bool = True, **evolve_kw) -> dict:
-    """Relaxation curves of diagonal observables from |bits>, sector by sector.
-
-    Every sector component evolves on its own (``largeq.engines.propagate.evolve`` with the sector's
-    ``SymmetricOperator``), all sectors advanced output step by output step so that only the current
-    state of each sector is held; the curves come from :class:`CrossSectorDiagonal` (cross terms included).
-    ``store_matrix`` (default True) stores each sector matrix as CSR (see :class:`StoredSectorMatrix`);
-    False keeps the evolution fully matrix-free (vectors and O(dim) tables only).
-
-    Returns a dict with ``curves`` {name: array}, ``sectors`` (labels, weights, dims), ``note`` and
-    ``equivalences`` {name: text} where an observable equals its stabiliser average for this state.
-    """
-
-    times = np.asarray(times, float)
-    comps, note = split_basis_state(bits, H.n_sites, translation=translation, reflection=reflection,
-                                    spin_flip=spin_flip, lookup=lookup)
-    sectors = [c.sector for c in comps]
-    group = sectors[0].group
-    bad = [k for k, v in is_invariant(H, group).items() if not v]
-    if bad:
-        raise ValueError(f"H is not invariant under {', '.join(bad)}")
-    cross = CrossSectorDiagonal(sectors, observables)
-    res = evolve_split_lockstep(H, comps, note, times, cross, tol=tol, store_matrix=store_matrix, **evolve_kw)
-    res["equivalences"] = _equivalences(observables, bits, group)
-    return res
-
-
-def _sec_info(c: SectorComponent) -> dict:
-    return {"label": c.sector.label, "key": c.sector.key, "dimension": c.sector.dim, "weight": c.weight}
-
-
-def _equivalences(observables, bits, group) -> dict:
-    out = {}
-    for name, a in observables.items():
-        avg, differs = stabiliser_average(a, bits, group)
-        if differs:
-            out[name] = ("for this initial state and a G-invariant H, <%s(t)> equals the curve of its average over "
-                         "the state's stabiliser (%d terms); the value reported is computed for %s itself"
-                         % (name, len(avg), name))
-    return out
-
-
-def evolve_split_lockstep(H: PauliSum, comps: list[SectorComponent], note: str, times, cross: CrossSectorDiagonal,
-                          *, tol: float = 1e-10, store_matrix: bool = True, **evolve_kw) -> dict:
-    """Evolve all sector components time step by time step (one vector per sector per output time).
-
-    Each sector uses its own Chebyshev run, driven one output step at a time through ``evolve``'s resume
-    interface (``start_index``), so the curves need only the current state of every sector.
-    """
-    from largeq.engines.bounds import spectral_bounds
-    from largeq.engines.propagate import evolve
-
-    times = np.asarray(times, float)
-    ops = [SymmetricOperator(H, c.sector, check=False) for c in comps]
-    if store_matrix:
-        ops = [op.stored() for op in ops]
-    bounds = [spectral_bounds(op) for op in ops]
-    states = [c.vector.copy() for c in comps]
-    curves = {n: np.zeros(times.size) for n in cross.names}
-    for n, v in cross(states).items():
-        curves[n][0] = v
-    for i in range(1, times.size):
-        for a, op in enumerate(ops):
-            holder = {}
-
-            def keep(idx, t, psi, holder=holder):
-                holder["psi"] = np.array(psi)
-            evolve(op, states[a], times[: i + 1], bounds=bounds[a], tol=tol, on_output=keep, start_index=i - 1,
-                   emit_start=False, **evolve_kw)
-            states[a] = holder["psi"]
-        for n, v in cross(states).items():
-            curves[n][i] = v
-    return {"curves": curves, "sectors": [_sec_info(c) for c in comps], "note": note, "equivalences": {},
-            "table_bytes": cross.table_bytes(), "bounds": bounds}

@@ -23,7 +23,7 @@ Presets
 
 from __future__ import annotations
 
-from largeq.scenario.spec import Coupling, Field
+from largeq.scenario.terms import Coupling, Field
 
 __all__ = ["expand", "PRESET_DOCS"]
 

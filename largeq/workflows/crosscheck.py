@@ -42,8 +42,9 @@ from largeq.reports.store import (Quantity, atomic_write_text, make_run_folder, 
 from largeq.scenario.spec import scenario_to_toml
 from largeq.basis.blocks import symmetry_group
 from largeq.operators.vectors import vdot
+from largeq.constants import CROSSCHECK_SEED, MAX_DENSE_DIM
 
-__all__ = ["CrosscheckOptions", "crosscheck_size", "run_crosscheck", "format_table", "ks_distances", "register"]
+__all__ = ["CrosscheckOptions", "crosscheck_size", "run_crosscheck", "format_table", "ks_distances"]
 
 
 class CrosscheckOptions:
@@ -58,11 +59,11 @@ class CrosscheckOptions:
     seed : int
         Seed of every random draw (one child generator per size and task).
     max_dim : int
-        Largest dense diagonalization (default 13000).
+        Largest dense diagonalization (default MAX_DENSE_DIM, 13000).
     progress : bool or None
     """
 
-    def __init__(self, n_moments: int = 256, n_vectors: int = 20, seed: int = 20260202, max_dim: int = 13000,
+    def __init__(self, n_moments: int = 256, n_vectors: int = 20, seed: int = CROSSCHECK_SEED, max_dim: int = MAX_DENSE_DIM,
                  progress: bool | None = None):
         if int(n_moments) != n_moments or n_moments < 16:
             raise ValueError(f"n_moments must be an integer >= 16, got {n_moments!r}")
@@ -373,38 +374,3 @@ def run_crosscheck(scenario, sizes, folder=None, options: CrosscheckOptions | No
 
 
 # ------------------------------------------------------------------------------------------------ command
-def cmd_crosscheck(args) -> int:
-    from largeq.cli import UsageError, resolve_scenario
-
-    scenario = resolve_scenario(args.scenario, args.sites)
-    sizes = args.sizes or [scenario.n_sites]
-    try:
-        options = CrosscheckOptions(args.moments, args.vectors, args.seed, args.max_dim, args.progress)
-    except ValueError as exc:
-        raise UsageError(str(exc)) from None
-    folder, summary = run_crosscheck(scenario, sizes, args.out, options)
-    if not any(r["status"] == "ok" for r in summary["sizes"]):
-        raise UsageError("no size fitted the dense limit; choose smaller --sizes or raise --max-dim")
-    print(f"results: {folder}/ (results.h5, summary.json, crosscheck.png, report.html)")
-    return 0
-
-
-def register(subparsers) -> None:
-    from largeq.cli import add_scenario_arguments
-
-    p = subparsers.add_parser("crosscheck", help="check the d_eff, equilibrium, fluctuation and thermal estimators "
-                                                 "against exact diagonalization at small sizes")
-    add_scenario_arguments(p)
-    p.add_argument("--sizes", type=int, nargs="+", default=None, metavar="L",
-                   help="chain lengths to check (default: the scenario's)")
-    p.add_argument("--out", default=None, metavar="FOLDER", help="run folder (default: runs/crosscheck-<timestamp>)")
-    p.add_argument("--moments", type=int, default=256, metavar="N", help="KPM moments (default 256)")
-    p.add_argument("--vectors", type=int, default=20, metavar="R",
-                   help="random vectors for the DOS trace and thermal averages (default 20)")
-    p.add_argument("--seed", type=int, default=20260202, metavar="S", help="seed of all random draws")
-    p.add_argument("--max-dim", type=int, default=13000, metavar="D",
-                   help="largest dense diagonalization (default 13000)")
-    g = p.add_mutually_exclusive_group()
-    g.add_argument("--progress", dest="progress", action="store_true", default=None, help="always show progress")
-    g.add_argument("--no-progress", dest="progress", action="store_false", help="never show progress")
-    p.set_defaults(func=cmd_crosscheck)

@@ -13,16 +13,16 @@ import numpy as np
 from largeq.analysis.bounds import fluctuation_bound
 from largeq.analysis.equilibration import (DenseLimitError, estimate_deff, exact_equilibration,
                                            exact_thermal_values, thermal_values)
+from largeq.constants import ESTIMATE_MAX_DIM, MAX_DENSE_DIM
 
 __all__ = ["MODES", "ESTIMATE_MAX_DIM", "equilibration_report"]
 
 MODES = ("auto", "exact", "estimate", "off")
 #: largest basis dimension for which "auto" runs the exact engine (its thermal values
 #: diagonalize every symmetry block of the basis: seconds at L = 16, minutes at L = 20)
-EXACT_AUTO_MAX_DIM = 13_000
+EXACT_AUTO_MAX_DIM = MAX_DENSE_DIM
 #: largest basis dimension for which "auto" runs the KPM estimate and TPQ thermal values
 #: (about a minute on 2 cores at L = 20 in a magnetization sector)
-ESTIMATE_MAX_DIM = 300_000
 
 
 def _finite(x):

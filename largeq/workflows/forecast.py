@@ -38,13 +38,13 @@ from largeq.workflows.planning import (COMPLEX, OVERHEAD_BYTES, MemoryForecast, 
                                        evolution_forecast, exact_forecast, format_bytes, kpm_forecast,
                                        table_bytes_estimate)
 from largeq.scenario.spec import Scenario
+from largeq.constants import BOUNDS_SEED
 
 __all__ = ["sector_weights", "calibrate", "Calibration", "predict_evolution", "measure_evolution",
-           "measure_baseline_rss", "forecast", "format_forecast", "register", "CALIBRATION_DIM"]
+           "measure_baseline_rss", "forecast", "format_forecast", "CALIBRATION_DIM"]
 
 CALIBRATION_DIM = 250_000
 BOUNDS_STEPS = 60  # Lanczos steps of the relax job's spectral bounds (engines.bounds default)
-BOUNDS_SEED = 20260101
 
 
 # --------------------------------------------------------------------------------------------- sectors
@@ -398,32 +398,3 @@ def _human_time(s: float) -> str:
     if s < 2 * 86400:
         return f"{s / 3600:.3g} h"
     return f"{s / 86400:.3g} days"
-
-
-def register(subparsers) -> None:
-    from largeq.cli import add_scenario_arguments
-
-    p = subparsers.add_parser("forecast", help="sectors, memory and predicted wall time of a scenario at a target length")
-    add_scenario_arguments(p)
-    p.add_argument("--from-sweep", default=None, metavar="FOLDER", help="predict d_eff and sigma_A from a sweep's fits")
-    p.add_argument("--out", default=None, metavar="FOLDER", help="run folder (default: runs/forecast-<timestamp>)")
-    p.add_argument("--block", type=int, default=None, metavar="K", help="output times per Chebyshev expansion")
-    p.add_argument("--no-calibration", action="store_true", help="skip the timing measurement (memory only)")
-    p.set_defaults(func=cmd_forecast)
-
-
-def cmd_forecast(args) -> int:
-    from largeq.cli import UsageError, resolve_scenario
-    from largeq.reports.store import atomic_write_text, make_run_folder, write_summary
-
-    if args.sites is None:
-        raise UsageError("forecast needs --sites L (the target chain length)")
-    scenario = resolve_scenario(args.scenario, args.sites)
-    f = forecast(scenario, from_sweep=args.from_sweep, calibrate_here=not args.no_calibration, block=args.block)
-    text = format_forecast(f)
-    print(text)
-    out = make_run_folder(args.out, "forecast")
-    write_summary(out / "forecast.json", f)
-    atomic_write_text(out / "forecast.txt", text + "\n")
-    print(f"  saved: {out}/forecast.json, forecast.txt")
-    return 0

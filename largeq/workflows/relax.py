@@ -14,7 +14,6 @@ import hashlib
 import time
 from dataclasses import dataclass
 from pathlib import Path
-from types import SimpleNamespace
 
 import numpy as np
 
@@ -23,6 +22,7 @@ from largeq.analysis.curves import analyse_curve
 from largeq.operators.problem import Problem, build_problem, spin_conventions
 from largeq.engines.bounds import SpectralBounds, spectral_bounds
 from largeq.engines.propagate import evolve
+from largeq.engines.sector_evolution import advance_sectors
 from largeq.workflows.equilibration_step import equilibration_report
 from largeq.workflows.planning import available_bytes, check_fits, evolution_forecast, format_bytes
 from largeq.reports.progress import progress_bar
@@ -33,11 +33,11 @@ from largeq.reports.store import (Quantity, atomic_write_text, make_run_folder, 
                                   run_metadata, write_results, write_summary)
 from largeq.scenario.spec import Scenario, load_scenario, scenario_to_toml
 from largeq.operators.vectors import vdot
+from largeq.constants import BOUNDS_SEED, ESTIMATOR_SEED
 
 __all__ = ["RelaxOptions", "RelaxRun", "run_relaxation", "resume_relaxation", "choose_block"]
 
 SCENARIO_FILE = "scenario.toml"
-BOUNDS_SEED = 20260101  # fixed seed of the Lanczos start vector: bounds are reproducible
 
 
 @dataclass(frozen=True)
@@ -70,7 +70,7 @@ class RelaxOptions:
     block: int | None = None
     memory_available: int | None = None
     equilibration: str = "auto"
-    seed: int = 20261201
+    seed: int = ESTIMATOR_SEED
     symmetry: str = "auto"
 
 
@@ -350,33 +350,27 @@ def _execute_sectors(problem: Problem, text: str, folder: Path, times, plan, opt
     wall0 = time.perf_counter()
     bar = progress_bar(last, f"relax L={problem.n_sites} ({len(comps)} sectors)", enabled=options.progress)
     bar.update(start_index)
-    errors = []
-    i = start_index
-    while i < last:
-        j_end = min(last, (i // block + 1) * block)
-        outs = [[None] * (j_end - i) for _ in comps]
-        for a, op in enumerate(ops):
-            def keep(idx, t, psi, a=a):
-                outs[a][idx - i - 1] = np.array(psi)
-            st = evolve(op, states[a], times[: j_end + 1], bounds=bounds[a], tol=scenario.numerics.tolerance,
-                        block=block, on_output=keep, start_index=i, emit_start=False)
-            matvecs += st.matvecs
-            errors.append(st.max_error_estimate)
-        for k in range(j_end - i):
-            rec.record(i + 1 + k, [outs[a][k] for a in range(len(comps))])
-        states = [outs[a][-1] for a in range(len(comps))]
-        bar.update(j_end - i)
-        i = j_end
-        if i < last:
-            def snapshot(i=i):
-                st = {f"psi_{a}": v for a, v in enumerate(states)}
-                st.update(index=i, block=block, elapsed=elapsed_before + time.perf_counter() - wall0, matvecs=matvecs)
-                st.update(rec.arrays())
-                return st, {"time": float(times[i])}
-            ck.maybe_save(snapshot)
+
+    def on_outputs(i, vecs):
+        rec.record(i, vecs)
+        bar.update(1)
+
+    def snapshot_at(progress):
+        def snapshot():
+            st = {f"psi_{a}": v for a, v in enumerate(progress.states)}
+            st.update(index=progress.index, block=block, elapsed=elapsed_before + time.perf_counter() - wall0,
+                      matvecs=progress.matvecs)
+            st.update(rec.arrays())
+            return st, {"time": float(times[progress.index])}
+        ck.maybe_save(snapshot)
+
+    progress = advance_sectors(ops, states, times, bounds=bounds, tol=scenario.numerics.tolerance, block=block,
+                               start_index=start_index, on_outputs=on_outputs, on_block_end=snapshot_at,
+                               matvecs=matvecs)
+    matvecs = progress.matvecs
     bar.close()
     wall = elapsed_before + time.perf_counter() - wall0
-    stats = SimpleNamespace(max_error_estimate=max(errors, default=0.0), total_error_estimate=float(sum(errors)))
+    stats = progress
     sector_info = {"note": plan["note"], "reason": plan["reason"], "stored_matrices": plan["store"],
                    "sectors": [{"label": c.sector.label, "dimension": int(c.sector.dim), "weight": float(c.weight)}
                                for c in comps]}

@@ -42,15 +42,15 @@ from largeq.reports import plots
 from largeq.reports.checkpoint import CHECKPOINT_NAME, Checkpointer, load_checkpoint
 from largeq.reports.store import (Quantity, atomic_write_text, make_run_folder, package_versions,
                                   read_summary, run_metadata, write_results, write_summary)
-from largeq.cli import UsageError
+from largeq.workflows.errors import OptionError
 from largeq.scenario.spec import Scenario, load_scenario, scenario_to_toml
+from largeq.constants import BOUNDS_SEED
 
-__all__ = ["SpectraOptions", "SpectraRun", "run_spectra", "resume_spectra", "register", "sector_note",
+__all__ = ["SpectraOptions", "SpectraRun", "run_spectra", "resume_spectra", "sector_note",
            "BOUNDS_SEED", "KERNELS"]
 
 SCENARIO_FILE = "scenario.toml"
 SETTINGS_FILE = "spectra_settings.json"
-BOUNDS_SEED = 20260101  # same fixed Lanczos seed as the relaxation job: identical bounds
 KERNELS = ("jackson", "lorentz")
 LORENTZ_LAMBDA = 4.0    # the engine's Lorentz kernel parameter (largeq.engines.kpm.lorentz_kernel)
 
@@ -84,17 +84,17 @@ class SpectraOptions:
 
     def validated(self) -> "SpectraOptions":
         if int(self.moments) != self.moments or self.moments < 16:
-            raise UsageError(f"spectra option 'moments': got {self.moments!r}; allowed: an integer >= 16")
+            raise OptionError(f"spectra option 'moments': got {self.moments!r}; allowed: an integer >= 16")
         if int(self.vectors) != self.vectors or self.vectors < 1:
-            raise UsageError(f"spectra option 'vectors': got {self.vectors!r}; allowed: an integer >= 1 "
+            raise OptionError(f"spectra option 'vectors': got {self.vectors!r}; allowed: an integer >= 1 "
                                 "(>= 2 for error bars)")
         if self.kernel not in KERNELS:
-            raise UsageError(f"spectra option 'kernel': got {self.kernel!r}; allowed: {', '.join(KERNELS)}")
+            raise OptionError(f"spectra option 'kernel': got {self.kernel!r}; allowed: {', '.join(KERNELS)}")
         seed = self.seed
         if seed is None:
             seed = int(np.random.SeedSequence().entropy % (2**63))
         if int(seed) != seed or seed < 0:
-            raise UsageError(f"spectra option 'seed': got {seed!r}; allowed: an integer >= 0")
+            raise OptionError(f"spectra option 'seed': got {seed!r}; allowed: an integer >= 0")
         return dataclasses.replace(self, moments=int(self.moments), vectors=int(self.vectors), seed=int(seed))
 
     def settings(self) -> dict:
@@ -443,52 +443,3 @@ def _plots_and_report(problem, folder: Path, ldos, dos, s) -> None:
 
 
 # ---------------------------------------------------------------------------- command line
-def register(subparsers) -> None:
-    """Add ``largeq spectra`` to the command line."""
-    from largeq.cli import add_scenario_arguments
-
-    p = subparsers.add_parser("spectra", help="energy-weight distribution (LDOS) of the initial state and the "
-                                              "density of states of its sector, by KPM; saved as a run folder")
-    add_scenario_arguments(p, scenario_optional=True)
-    p.add_argument("--out", default=None, metavar="DIR", help="run folder (default: runs/spectra-<timestamp>)")
-    p.add_argument("--moments", type=int, default=SpectraOptions.moments, metavar="N",
-                   help=f"Chebyshev moments (default {SpectraOptions.moments}); resolution ~ pi a / N")
-    p.add_argument("--vectors", type=int, default=SpectraOptions.vectors, metavar="R",
-                   help=f"random vectors of the DOS trace (default {SpectraOptions.vectors})")
-    p.add_argument("--kernel", choices=KERNELS, default="jackson", help="damping kernel (default jackson)")
-    p.add_argument("--seed", type=int, default=None, metavar="S", help="seed of the random vectors (default: drawn, "
-                                                                       "and written to the outputs)")
-    p.add_argument("--resume", default=None, metavar="DIR", help="continue an interrupted spectra run")
-    g = p.add_mutually_exclusive_group()
-    g.add_argument("--progress", dest="progress", action="store_true", default=None, help="always show a progress bar")
-    g.add_argument("--no-progress", dest="progress", action="store_false", help="never show a progress bar")
-    p.set_defaults(func=cmd_spectra)
-
-
-def cmd_spectra(args) -> int:
-    from largeq.cli import UsageError, resolve_scenario
-
-    options = SpectraOptions(moments=args.moments, vectors=args.vectors, kernel=args.kernel, seed=args.seed,
-                             progress=args.progress)
-    if args.resume:
-        if args.scenario:
-            raise UsageError("spectra --resume takes a run folder and no scenario")
-        run = resume_spectra(args.resume, options)
-    else:
-        if not args.scenario:
-            raise UsageError("spectra needs a scenario (a TOML file or a built-in example name) or --resume DIR")
-        run = run_spectra(resolve_scenario(args.scenario, args.sites), args.out, options)
-    s = run.summary
-    print(s["title"])
-    print(f"  L = {s['sites']}, {s['basis']['kind']} basis, dimension {s['dimension']:,}; {s['kernel']} kernel, "
-          f"{s['moments']} moments, {s['vectors']} random vectors (seed {s['seed']}); {s['wall_seconds']:.1f} s")
-    print(f"  state energy {s['state_energy']:.6g} (moments: {s['state_energy_from_moments']:.6g}), "
-          f"width {s['state_width']:.4g}; resolution {s['resolution_at_state']:.3g} at that energy")
-    print(f"  DOS there {s['dos_at_state']:.4g} +- {s['dos_at_state_err']:.2g} per J; states below "
-          f"{s['states_below_state_energy']:.5g} +- {s['states_below_state_energy_err']:.2g} "
-          f"({100 * s['fraction_below_state_energy']:.3g} %)")
-    for f in s["flags"]:
-        print(f"  note: {f}")
-    print(f"  {s['ensemble_note']}")
-    print(f"  results: {run.folder}/ (results.h5, summary.json, spectra.png, report.html)")
-    return 0

@@ -43,12 +43,12 @@ from largeq.reports import html
 from largeq.reports import plots
 from largeq.reports.store import (Quantity, atomic_write_text, make_run_folder, package_versions,
                                   run_metadata, write_results, write_summary)
-from largeq.cli import UsageError
+from largeq.workflows.errors import OptionError, WorkflowError
 from largeq.scenario.spec import Scenario, scenario_to_toml
 from largeq.workflows.spectra import BOUNDS_SEED, sector_note, state_vector, vector_dtype
 from largeq.operators.vectors import vdot
 
-__all__ = ["ThermalOptions", "ThermalRun", "run_thermal", "default_beta_grid", "register"]
+__all__ = ["ThermalOptions", "ThermalRun", "run_thermal", "default_beta_grid"]
 
 SCENARIO_FILE = "scenario.toml"
 GRID_POINTS = 25          # default grid size (the TPQ stepping costs the same whatever the number of points)
@@ -84,22 +84,22 @@ class ThermalOptions:
 
     def validated(self) -> "ThermalOptions":
         if int(self.vectors) != self.vectors or self.vectors < 1:
-            raise UsageError(f"thermal option 'vectors': got {self.vectors!r}; allowed: an integer >= 1 "
+            raise OptionError(f"thermal option 'vectors': got {self.vectors!r}; allowed: an integer >= 1 "
                                 "(>= 2 for error bars)")
         betas = self.betas
         if betas is not None:
             arr = np.unique(np.asarray(betas, dtype=float).reshape(-1))
             if arr.size < 2 or not np.all(np.isfinite(arr)):
-                raise UsageError(f"thermal option 'betas': got {list(betas)!r}; allowed: at least two distinct "
+                raise OptionError(f"thermal option 'betas': got {list(betas)!r}; allowed: at least two distinct "
                                     "finite inverse temperatures")
             betas = tuple(float(b) for b in arr)
         if self.window is not None and not (np.isfinite(self.window) and self.window > 0):
-            raise UsageError(f"thermal option 'window': got {self.window!r}; allowed: a positive energy")
+            raise OptionError(f"thermal option 'window': got {self.window!r}; allowed: a positive energy")
         seed = self.seed
         if seed is None:
             seed = int(np.random.SeedSequence().entropy % (2**63))
         if int(seed) != seed or seed < 0:
-            raise UsageError(f"thermal option 'seed': got {seed!r}; allowed: an integer >= 0")
+            raise OptionError(f"thermal option 'seed': got {seed!r}; allowed: an integer >= 0")
         return dataclasses.replace(self, vectors=int(self.vectors), betas=betas, seed=int(seed))
 
 
@@ -222,7 +222,7 @@ def run_thermal(scenario: Scenario, folder=None, options: ThermalOptions = Therm
             except ValueError:
                 upward = energy < canon.energy.min()
                 if extended >= MAX_EXTENSIONS or np.max(np.abs(betas)) >= beta_limit:
-                    raise UsageError(
+                    raise WorkflowError(
                         f"thermal: the state's energy {energy:.6g} is not reached on the beta grid "
                         f"[{betas.min():.4g}, {betas.max():.4g}] (energies {canon.energy.min():.6g} .. "
                         f"{canon.energy.max():.6g}); the state is too close to a spectral edge for a "
@@ -464,47 +464,3 @@ def _report(problem, folder: Path, s: dict) -> None:
     ]
     html.write_report(folder / "report.html", title=problem.scenario.title, sections=sections,
                       subtitle=f"largeq {__version__}: thermal predictions for L = {problem.n_sites}")
-
-
-# ---------------------------------------------------------------------------- command line
-def register(subparsers) -> None:
-    """Add ``largeq thermal`` to the command line."""
-    from largeq.cli import add_scenario_arguments
-
-    p = subparsers.add_parser("thermal", help="canonical and microcanonical values at the initial state's energy "
-                                              "(thermal pure quantum states); saved as a run folder")
-    add_scenario_arguments(p)
-    p.add_argument("--out", default=None, metavar="DIR", help="run folder (default: runs/thermal-<timestamp>)")
-    p.add_argument("--vectors", type=int, default=ThermalOptions.vectors, metavar="R",
-                   help=f"random vectors (default {ThermalOptions.vectors})")
-    p.add_argument("--betas", type=float, nargs="+", default=None, metavar="BETA",
-                   help="inverse temperatures of the grid (1/J; default: chosen to cover the state's energy; "
-                        "extended when it does not)")
-    p.add_argument("--window", type=float, default=None, metavar="W",
-                   help="standard deviation of the microcanonical energy window (J; default 2%% of the spectral width)")
-    p.add_argument("--seed", type=int, default=None, metavar="S", help="seed of the random vectors (default: drawn, "
-                                                                       "and written to the outputs)")
-    g = p.add_mutually_exclusive_group()
-    g.add_argument("--progress", dest="progress", action="store_true", default=None, help="always show a progress bar")
-    g.add_argument("--no-progress", dest="progress", action="store_false", help="never show a progress bar")
-    p.set_defaults(func=cmd_thermal)
-
-
-def cmd_thermal(args) -> int:
-    from largeq.cli import resolve_scenario
-
-    options = ThermalOptions(vectors=args.vectors, betas=tuple(args.betas) if args.betas else None,
-                             window=args.window, seed=args.seed, progress=args.progress)
-    run = run_thermal(resolve_scenario(args.scenario, args.sites), args.out, options)
-    s = run.summary
-    print(s["title"])
-    print(f"  L = {s['sites']}, {s['basis']['kind']} basis, dimension {s['dimension']:,}; {s['vectors']} random "
-          f"vectors (seed {s['seed']}); {s['wall_seconds']:.1f} s")
-    print(f"  state energy {s['state_energy']:.6g}: beta* = {s['beta']:.5g} +- {s['beta_err']:.2g} "
-          f"(T* = {s['temperature']:.5g}); microcanonical window sigma = {s['microcanonical_window']['width']:.3g}")
-    for name, o in s["observables"].items():
-        print(f"  {name:18s} canonical {o['canonical']:+.5f} +- {o['canonical_err']:.1e}   "
-              f"microcanonical {o['microcanonical']:+.5f} +- {o['microcanonical_err']:.1e}")
-    print(f"  {s['ensemble_note']}")
-    print(f"  results: {run.folder}/ (results.h5, summary.json, thermal.png, report.html)")
-    return 0

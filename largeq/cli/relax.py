@@ -1,0 +1,95 @@
+"""``largeq relax``: the main job (relaxation curves, equilibrium values, fluctuations) as a run folder."""
+
+from __future__ import annotations
+
+from largeq.cli.common import UsageError, add_progress_arguments, add_scenario_arguments, resolve_scenario
+from largeq.workflows.disorder import run_disorder_relaxation
+from largeq.workflows.relax import RelaxOptions, resume_relaxation, run_relaxation
+from largeq.constants import ESTIMATOR_SEED
+
+
+def add_parser(sub) -> None:
+    p = sub.add_parser("relax", help="main job: relaxation curves, equilibrium values, fluctuations, saved as a run folder")
+    add_scenario_arguments(p, scenario_optional=True)
+    p.add_argument("--out", default=None, metavar="FOLDER", help="run folder (default: runs/relax-<timestamp>)")
+    p.add_argument("--resume", default=None, metavar="FOLDER", help="continue an interrupted run from its checkpoint")
+    p.add_argument("--checkpoint-every", type=float, default=None, metavar="SECONDS",
+                   help="checkpoint interval (default: the scenario's numerics.checkpoint_seconds)")
+    p.add_argument("--block", type=int, default=None, metavar="K",
+                   help="output times sharing one Chebyshev expansion (default: chosen from free memory)")
+    p.add_argument("--equilibration", choices=("auto", "exact", "estimate", "off"), default="auto",
+                   help="effective dimension, fluctuation bound and thermal values: exact diagonalization where it "
+                        "fits, KPM/typical-state estimates up to dimension 300,000, skipped beyond (auto)")
+    p.add_argument("--seed", type=int, default=ESTIMATOR_SEED, help="seed of the estimators' random vectors (recorded)")
+    p.add_argument("--symmetry", choices=("auto", "off"), default="auto",
+                   help="evolve in momentum/reflection/spin-flip sectors when the model, the start and the "
+                        "observables allow it (auto), or always in the magnetization sector (off)")
+    p.add_argument("--realizations", type=int, default=1, metavar="N",
+                   help="disorder realisations (random fields only): one sub-folder each plus their average")
+    add_progress_arguments(p)
+    p.set_defaults(func=run)
+
+
+def run(args) -> int:
+    options = RelaxOptions(checkpoint_seconds=args.checkpoint_every, progress=args.progress, block=args.block,
+                           equilibration=args.equilibration, seed=args.seed, symmetry=args.symmetry)
+    if args.resume:
+        if args.scenario:
+            raise UsageError("relax --resume takes a run folder and no scenario")
+        result = resume_relaxation(args.resume, options)
+    else:
+        if not args.scenario:
+            raise UsageError("relax needs a scenario (a TOML file or a built-in example name) or --resume FOLDER")
+        if args.realizations < 1:
+            raise UsageError("--realizations must be >= 1")
+        if args.realizations > 1:
+            result = run_disorder_relaxation(resolve_scenario(args.scenario, args.sites), args.realizations, args.out,
+                                          options, echo=print)
+            _print_disorder_summary(result)
+            return 0
+        result = run_relaxation(resolve_scenario(args.scenario, args.sites), args.out, options)
+    _print_relax_summary(result)
+    return 0
+
+
+def _print_disorder_summary(result) -> None:
+    s = result.summary
+    print(f"{s['title']}")
+    print(f"  L = {s['sites']}, {s['realizations']} disorder realisations (seeds derived from {s['base_seed']}); "
+          f"{s['matvecs']} products in {s['wall_seconds']:.1f} s")
+    for name, o in s["observables"].items():
+        e, v = o["equilibrium"], o["temporal_variance"]
+        print(f"  {name:18s} equilibrium {e['mean']:+.5f} +- {e['stderr']:.1e} (spread {e['spread']:.2e})   "
+              f"sigma^2 {v['mean']:.2e} +- {v['stderr']:.1e}")
+    print(f"  results: {result.folder}/ (realization-*/, results.h5, summary.json, report.html)")
+
+
+def _print_relax_summary(result) -> None:
+    s = result.summary
+    print(f"{s['title']}")
+    print(f"  L = {s['sites']}, {s['basis']['kind']} basis, dimension {s['basis']['dimension']:,}; "
+          f"{s['method']} (tolerance {s['tolerance']:g}); {s['matvecs']} products in {s['wall_seconds']:.1f} s")
+    print(f"  initial energy {s['initial_energy']:.6g}; energy drift {s['energy_drift']:.2g}; norm drift {s['norm_drift']:.2g}")
+    eq = s.get("equilibration", {})
+    if eq.get("d_eff") is not None:
+        lo, hi = eq["d_eff_range"]
+        rng = "" if lo == hi else f" [{lo:.3g}, {hi:.3g}]"
+        print(f"  effective dimension d_eff = {eq['d_eff']:.4g}{rng} ({eq['method']})")
+    elif eq.get("note"):
+        print(f"  effective dimension: {eq['note']}")
+    for name, o in s["observables"].items():
+        state = "settled" if o["settled"] else "NOT settled"
+        print(f"  {name:18s} equilibrium {o['equilibrium']:+.5f} +- {o['equilibrium_err']:.1e}   "
+              f"sigma^2 {o['temporal_variance']:.2e}   t_relax {o['relaxation_time']:.3g}   ({state})")
+        extra = []
+        if "diagonal_ensemble" in o:
+            extra.append(f"diagonal ensemble {o['diagonal_ensemble']:+.5f}")
+        if o.get("bound") is not None:
+            extra.append(f"bound on sigma^2 {o['bound']:.3g}")
+        if o.get("canonical") is not None:
+            extra.append(f"canonical {o['canonical']:+.5f}")
+        if o.get("microcanonical") is not None:
+            extra.append(f"microcanonical {o['microcanonical']:+.5f}")
+        if extra:
+            print("      " + "; ".join(extra))
+    print(f"  results: {result.folder}/ (results.h5, summary.json, report.html)")

@@ -1,0 +1,22 @@
+"""Limits and default seeds shared across the package (one place; every layer may import it).
+
+Seeds are fixed so that reruns give the same numbers; every run records the seeds it used.
+"""
+
+from __future__ import annotations
+
+__all__ = ["MAX_DENSE_DIM", "ESTIMATE_MAX_DIM", "BOUNDS_SEED", "ESTIMATOR_SEED", "CROSSCHECK_SEED", "SWEEP_SEED"]
+
+#: largest matrix diagonalized densely (about 4 GB for eigenvectors in float64 and minutes on 2 cores)
+MAX_DENSE_DIM = 13_000
+#: largest basis for which the main command runs the KPM / typical-state estimates by default
+ESTIMATE_MAX_DIM = 300_000
+
+#: seed of the Lanczos start vector of the spectral bounds (identical bounds in every command)
+BOUNDS_SEED = 20260101
+#: default seed of the estimators' random vectors in the main command
+ESTIMATOR_SEED = 20261201
+#: default seed of the cross-check's random draws
+CROSSCHECK_SEED = 20260202
+#: default seed of a sweep's random vectors
+SWEEP_SEED = 20260303
