@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 import scipy.linalg
 
-from largeq.analysis.bounds import GOE_R, POISSON_R
+from largeq.analysis.equilibrium_formulas import GOE_R, POISSON_R
 from largeq.operators.problem import build_problem
 from largeq.scenario import resolve_scenario
 from largeq.engines.propagate import evolve

@@ -1,10 +1,10 @@
-"""Tests of largeq.analysis.bounds: bounds, level statistics, d_eff from densities, survival plateau."""
+"""Tests of largeq.analysis.equilibrium_formulas: bounds, level statistics, d_eff from densities, survival plateau."""
 
 import numpy as np
 import pytest
 import scipy.linalg
 
-from largeq.analysis.bounds import (GOE_R, GUE_R, POISSON_R, FiniteTime, amplitude_eta, deff_from_densities,
+from largeq.analysis.equilibrium_formulas import (GOE_R, GUE_R, POISSON_R, FiniteTime, amplitude_eta, deff_from_densities,
                                     fluctuation_bound, level_spacing_ratio, survival_plateau)
 from largeq.engines.exact import diagonalize, quench_exact
 

@@ -5,7 +5,7 @@ import pytest
 import scipy.linalg
 import scipy.sparse.linalg as spla
 
-from largeq.analysis.bounds import fluctuation_bound
+from largeq.analysis.equilibrium_formulas import fluctuation_bound
 from largeq.engines.exact import (
     MAX_DENSE_DIM,
     Spectrum,

@@ -39,7 +39,7 @@ import numpy as np
 import scipy.linalg
 import scipy.optimize
 
-from largeq.analysis.bounds import (GOE_R, POISSON_R, DeffEstimate, SpacingRatio, amplitude_eta, level_spacing_ratio,
+from largeq.analysis.equilibrium_formulas import (GOE_R, POISSON_R, DeffEstimate, SpacingRatio, amplitude_eta, level_spacing_ratio,
                                     deff_from_densities, fluctuation_bound, survival_plateau)
 from largeq.engines.bounds import spectral_bounds
 from largeq.engines.exact import ExactQuench, diagonalize, quench_exact

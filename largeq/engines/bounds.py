@@ -72,13 +72,8 @@ class SpectralBounds:
         return (self.e_max - self.e_min) / (2.0 - eps), self.center
 
 
-# Level-1 vector operations live in largeq.operators.vectors (compiled, thread-count independent).
-_axpy = axpy
-_vdot = vdot
-_norm = norm
 
-
-def _check_op(op) -> int:
+def check_operator(op) -> int:
     shape = getattr(op, "shape", None)
     if shape is None or len(shape) != 2 or shape[0] != shape[1]:
         raise ValueError(f"op must be a square operator with a 2-d shape, got shape {shape!r}")
@@ -114,12 +109,12 @@ def lanczos_tridiagonal(op, v0: np.ndarray, steps: int) -> tuple[np.ndarray, np.
     -----
     Holds two full-size vectors.
     """
-    n = _check_op(op)
+    n = check_operator(op)
     dtype = np.result_type(getattr(op, "dtype", np.float64), v0.dtype, np.float64)
     v = np.array(v0, dtype=dtype, copy=True).reshape(-1)
     if v.shape[0] != n:
         raise ValueError(f"v0 must have length {n} to match op, got {v.shape[0]}")
-    nrm = _norm(v)
+    nrm = norm(v)
     if not np.isfinite(nrm) or nrm == 0.0:
         raise ValueError("v0 must be a finite, nonzero vector")
     v /= nrm
@@ -131,9 +126,9 @@ def lanczos_tridiagonal(op, v0: np.ndarray, steps: int) -> tuple[np.ndarray, np.
     for _ in range(min(steps, n)):
         # w <- H v - beta_{j-1} v_{j-1}
         fused_update(op, v, w, 1.0, 0.0, -beta)
-        alpha = float(_vdot(v, w).real)
-        _axpy(-alpha, v, w)
-        beta = _norm(w)
+        alpha = float(vdot(v, w).real)
+        axpy(-alpha, v, w)
+        beta = norm(w)
         alphas.append(alpha)
         betas.append(beta)
         scale = max(scale, abs(alpha), beta)
@@ -178,7 +173,7 @@ def spectral_bounds(op, *, steps: int = 60, margin: float = 0.01, rng=None,
     the true spectrum very likely but is not a proof (a start vector orthogonal to an extreme
     eigenvector never sees it).
     """
-    n = _check_op(op)
+    n = check_operator(op)
     if not isinstance(steps, (int, np.integer)) or steps < 1:
         raise ValueError(f"steps must be an integer >= 1, got {steps!r}")
     if not (np.isfinite(margin) and margin >= 0):

@@ -30,7 +30,8 @@ import numpy as np
 from scipy.linalg import eigh_tridiagonal
 from scipy.special import gammaln, jv
 
-from largeq.engines.bounds import SpectralBounds, _axpy, _check_op, _norm, _vdot, spectral_bounds
+from largeq.engines.bounds import SpectralBounds, check_operator, spectral_bounds
+from largeq.operators.vectors import axpy, norm, vdot
 from largeq.operators.linalg import fused_update
 
 __all__ = [
@@ -185,7 +186,7 @@ def _chebyshev_block(op, psi, dts, bounds, tol, outs, work_a, work_b):
     fused_update(op, psi, work_b, 1.0 / a, -b / a, 0.0)
     for c, out in zip(coeffs, outs):
         if len(c) > 1:
-            _axpy(c[1], work_b, out)
+            axpy(c[1], work_b, out)
     work_a[...] = psi
     prev, cur = work_a, work_b
     alpha, beta = 2.0 / a, -2.0 * b / a
@@ -195,7 +196,7 @@ def _chebyshev_block(op, psi, dts, bounds, tol, outs, work_a, work_b):
         prev, cur = cur, prev
         for c, out in zip(coeffs, outs):
             if n < len(c):
-                _axpy(c[n], cur, out)
+                axpy(c[n], cur, out)
     return order - 1, order, max(errs)
 
 
@@ -246,7 +247,7 @@ def _lanczos_step(op, psi, dt, tol, max_krylov, basis, out, orders):
     src = psi
     remaining = float(dt)
     while True:
-        nrm = float(_norm(src))
+        nrm = float(norm(src))
         if len(basis) == 0:
             basis.append(np.empty_like(psi))
         np.multiply(src, 1.0 / nrm, out=basis[0])
@@ -263,10 +264,10 @@ def _lanczos_step(op, psi, dt, tol, max_krylov, basis, out, orders):
             fused_update(op, basis[j], w, 1.0, 0.0, 0.0)
             matvecs += 1
             if j > 0:
-                _axpy(-betas[j - 1], basis[j - 1], w)
-            alpha = float(_vdot(basis[j], w).real)
-            _axpy(-alpha, basis[j], w)
-            beta = float(_norm(w))
+                axpy(-betas[j - 1], basis[j - 1], w)
+            alpha = float(vdot(basis[j], w).real)
+            axpy(-alpha, basis[j], w)
+            beta = float(norm(w))
             alphas.append(alpha)
             scale = max(scale, abs(alpha), beta)
             theta, s = _tridiag_eig(alphas, betas)
@@ -295,7 +296,7 @@ def _lanczos_step(op, psi, dt, tol, max_krylov, basis, out, orders):
         # out <- nrm * sum_i y_i v_i  (basis[0] holds src / nrm, so src may be out itself)
         np.multiply(basis[0], nrm * y[0], out=out)
         for i in range(1, m):
-            _axpy(nrm * y[i], basis[i], out)
+            axpy(nrm * y[i], basis[i], out)
         orders.append(m)
         substeps += 1
         err_total += err
@@ -310,7 +311,7 @@ def _lanczos_step(op, psi, dt, tol, max_krylov, basis, out, orders):
 # ----------------------------------------------------------------------------------------
 
 def _validate_common(op, psi0, times, tol, start_index, on_output, progress):
-    n = _check_op(op)
+    n = check_operator(op)
     psi0 = np.asarray(psi0)
     if psi0.ndim != 1 or psi0.shape[0] != n:
         raise ValueError(f"psi0 must have shape ({n},) to match op, got {psi0.shape}")
@@ -446,7 +447,7 @@ def evolve(op, psi0: np.ndarray, times, *, method: str = "chebyshev",
         while i < n_times - 1:
             j_end = min(n_times - 1, (i // block + 1) * block)
             dts = times[i + 1:j_end + 1] - times[i]
-            norm_start = float(_norm(state))  # per-step check: round-off may accumulate over many steps
+            norm_start = float(norm(state))  # per-step check: round-off may accumulate over many steps
             mv, order, err = _chebyshev_block(op, state, dts, bounds, tol,
                                               outs[:len(dts)], work_a, work_b)
             matvecs += mv
@@ -454,7 +455,7 @@ def evolve(op, psi0: np.ndarray, times, *, method: str = "chebyshev",
             errs.append(err)
             steps += 1
             for k in range(len(dts)):
-                nk = float(_norm(outs[k]))
+                nk = float(norm(outs[k]))
                 if abs(nk - norm_start) > (2 * tol + 1e-9) * norm_start:
                     raise RuntimeError(
                         f"norm changed from {norm_start!r} to {nk!r} within one step, at output index {i + 1 + k}: "

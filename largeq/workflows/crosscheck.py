@@ -27,9 +27,9 @@ from pathlib import Path
 import numpy as np
 
 from largeq import __version__
-from largeq.analysis.bounds import GOE_R, POISSON_R
+from largeq.analysis.equilibrium_formulas import GOE_R, POISSON_R
 from largeq.analysis.curves import analyse_curve
-from largeq.operators.problem import build_problem, spin_conventions
+from largeq.operators.problem import build_problem
 from largeq.engines.kpm import kernel_factors, reconstruct_cumulative
 from largeq.engines.propagate import evolve
 from largeq.analysis.equilibration import (DenseLimitError, default_bounds, estimate_deff,
@@ -37,8 +37,9 @@ from largeq.analysis.equilibration import (DenseLimitError, default_bounds, esti
 from largeq.reports.progress import progress_bar
 from largeq.reports import html
 from largeq.reports import plots
-from largeq.reports.store import (Quantity, atomic_write_text, make_run_folder, package_versions,
-                                  run_metadata, write_results, write_summary)
+from largeq.reports.run_record import run_attributes
+from largeq.reports.store import (Quantity, atomic_write_text, make_run_folder, write_results,
+                                  write_summary)
 from largeq.scenario.spec import scenario_to_toml
 from largeq.basis.blocks import symmetry_group
 from largeq.operators.vectors import vdot
@@ -289,9 +290,8 @@ def _save(folder: Path, scenario, rows: list, options: CrosscheckOptions, final:
         g["numbers"] = {k: v for k, v in c.items() if isinstance(v, (int, float, bool, np.floating)) and v is not None}
         g["observables"] = {n: dict(o) for n, o in c["observables"].items()}
         tree[f"L{r['sites']}"] = g
-    attrs = {"largeq_version": __version__, "scenario_toml": text, "title": scenario.title,
-             "conventions": spin_conventions(), "versions": package_versions(), "machine": run_metadata(),
-             "options": summary["options"], "complete": final, "references": summary["references"]}
+    attrs = run_attributes("crosscheck", text, scenario.title, options=summary["options"], complete=final,
+                           references=summary["references"])
     write_results(folder / "results.h5", tree or {"empty": None}, attrs=attrs)
     return summary
 

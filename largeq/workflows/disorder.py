@@ -24,8 +24,9 @@ import numpy as np
 from largeq import __version__
 from largeq.reports import html
 from largeq.reports import plots
-from largeq.reports.store import (Quantity, atomic_write_text, make_run_folder, package_versions,
-                                  read_results, read_summary, run_metadata, write_results, write_summary)
+from largeq.reports.run_record import run_attributes
+from largeq.reports.store import (Quantity, atomic_write_text, make_run_folder, read_results,
+                                  read_summary, write_results, write_summary)
 from largeq.scenario.spec import Scenario, ScenarioError, parse_scenario, scenario_to_dict, scenario_to_toml
 
 __all__ = ["is_disordered", "base_seed", "realization_seeds", "with_seed", "aggregate", "aggregate_curves",
@@ -179,9 +180,8 @@ def _aggregate_relax(scenario, out: Path, seeds, summaries, wall) -> dict:
         "statistics": "mean, stderr = std(ddof=1)/sqrt(N), spread = std(ddof=1) over realisations",
         "folders": [realization_folder(out, k).name for k in range(len(seeds))],
     }
-    attrs = {"largeq_version": __version__, "scenario_toml": scenario_to_toml(scenario), "title": scenario.title,
-             "versions": package_versions(), "machine": run_metadata(), "seeds": list(seeds),
-             "base_seed": base_seed(scenario), "realizations": len(seeds)}
+    attrs = run_attributes("relax", scenario_to_toml(scenario), scenario.title, seeds=list(seeds),
+                           base_seed=base_seed(scenario), realizations=len(seeds))
     write_results(out / "results.h5", {"curves": tree_curves, "observables": {
         n: {k: {kk: vv for kk, vv in v.items()} for k, v in o.items()} for n, o in obs.items()}}, attrs=attrs)
     write_summary(out / "summary.json", summary)

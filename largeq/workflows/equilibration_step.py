@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from largeq.analysis.bounds import fluctuation_bound
+from largeq.analysis.equilibrium_formulas import fluctuation_bound
 from largeq.analysis.equilibration import (DenseLimitError, estimate_deff, exact_equilibration,
                                            exact_thermal_values, thermal_values)
 from largeq.constants import ESTIMATE_MAX_DIM, MAX_DENSE_DIM

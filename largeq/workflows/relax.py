@@ -19,7 +19,7 @@ import numpy as np
 
 from largeq import __version__
 from largeq.analysis.curves import analyse_curve
-from largeq.operators.problem import Problem, build_problem, spin_conventions
+from largeq.operators.problem import Problem, build_problem
 from largeq.engines.bounds import SpectralBounds, spectral_bounds
 from largeq.engines.propagate import evolve
 from largeq.engines.sector_evolution import advance_sectors
@@ -29,8 +29,9 @@ from largeq.reports.progress import progress_bar
 from largeq.reports import html
 from largeq.reports import plots
 from largeq.reports.checkpoint import CHECKPOINT_NAME, Checkpointer, load_checkpoint
-from largeq.reports.store import (Quantity, atomic_write_text, make_run_folder, package_versions,
-                                  run_metadata, write_results, write_summary)
+from largeq.reports.run_record import run_attributes
+from largeq.reports.store import (Quantity, atomic_write_text, make_run_folder, write_results,
+                                  write_summary)
 from largeq.scenario.spec import Scenario, load_scenario, scenario_to_toml
 from largeq.operators.vectors import vdot
 from largeq.constants import BOUNDS_SEED, ESTIMATOR_SEED
@@ -437,26 +438,18 @@ def _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, m
         "total_error_estimate": stats.total_error_estimate if stats else 0.0,
         "memory_forecast_bytes": forecast.total_bytes,
     }
-    attrs = {
-        "largeq_version": __version__,
-        "scenario_toml": text,
-        "title": scenario.title,
-        "conventions": spin_conventions(),
-        "versions": package_versions(),
-        "machine": run_metadata(),
-        "basis": problem.basis.describe(),
-        "basis_reason": problem.basis_reason if sectors is None else sectors["reason"],
-        "symmetry_sectors": sectors or {},
-        "symmetries": problem.symmetries,
-        "initial_state": problem.start.label,
-        "initial_weight_in_basis": captured,
-        "numerics": numerics,
-        "wall_seconds": wall,
-        "norm_drift": norm_drift,
-        "energy_drift": energy_drift,
-        "seeds": {"bounds_lanczos": BOUNDS_SEED, "estimators": options.seed, **_seeds(scenario)},
-        "equilibration": eq["summary"],
-    }
+    attrs = run_attributes(
+        "relax", text, scenario.title, problem=problem,
+        basis_reason=problem.basis_reason if sectors is None else sectors["reason"],
+        symmetry_sectors=sectors or {},
+        initial_weight_in_basis=captured,
+        numerics=numerics,
+        wall_seconds=wall,
+        norm_drift=norm_drift,
+        energy_drift=energy_drift,
+        seeds={"bounds_lanczos": BOUNDS_SEED, "estimators": options.seed, **_seeds(scenario)},
+        equilibration=eq["summary"],
+    )
     write_results(folder / "results.h5", tree, attrs=attrs)
     summary = {
         "title": scenario.title,

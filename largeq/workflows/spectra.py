@@ -32,7 +32,7 @@ from pathlib import Path
 import numpy as np
 
 from largeq import __version__
-from largeq.operators.problem import Problem, build_problem, spin_conventions
+from largeq.operators.problem import Problem, build_problem
 from largeq.engines.bounds import SpectralBounds, spectral_bounds
 from largeq.engines.kpm import counting_function, density_of_states, dos_on_grid, local_density
 from largeq.workflows.planning import MemoryForecast, available_bytes, check_fits, format_bytes, kpm_forecast
@@ -40,8 +40,9 @@ from largeq.reports.progress import progress_bar
 from largeq.reports import html
 from largeq.reports import plots
 from largeq.reports.checkpoint import CHECKPOINT_NAME, Checkpointer, load_checkpoint
-from largeq.reports.store import (Quantity, atomic_write_text, make_run_folder, package_versions,
-                                  read_summary, run_metadata, write_results, write_summary)
+from largeq.reports.run_record import run_attributes
+from largeq.reports.store import (Quantity, atomic_write_text, make_run_folder, read_summary,
+                                  write_results, write_summary)
 from largeq.workflows.errors import OptionError
 from largeq.scenario.spec import Scenario, load_scenario, scenario_to_toml
 from largeq.constants import BOUNDS_SEED
@@ -348,18 +349,8 @@ def _finish(problem, text, folder, options, bounds, ldos, dos, timings, forecast
         "memory_forecast_bytes": forecast.total_bytes,
     }
     attrs = {
-        "largeq_version": __version__,
-        "command": "spectra",
-        "scenario_toml": text,
-        "title": scenario.title,
-        "conventions": spin_conventions(),
-        "versions": package_versions(),
-        "machine": run_metadata(),
-        "basis": problem.basis.describe(),
-        "basis_reason": problem.basis_reason,
+        **run_attributes("spectra", text, scenario.title, problem=problem),
         "ensemble_note": note,
-        "symmetries": problem.symmetries,
-        "initial_state": problem.start.label,
         "initial_weight_in_basis": captured,
         "kpm": kpm_meta,
         "timings": timings,

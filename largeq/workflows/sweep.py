@@ -42,8 +42,9 @@ from largeq.workflows.planning import (MemoryRefusal, PeakRSS, available_bytes, 
                                        exact_forecast, format_bytes, kpm_forecast)
 from largeq.reports import html
 from largeq.reports import plots
-from largeq.reports.store import (Quantity, atomic_write_text, make_run_folder, package_versions,
-                                  run_metadata, write_results, write_summary)
+from largeq.reports.run_record import run_attributes
+from largeq.reports.store import (Quantity, atomic_write_text, make_run_folder, write_results,
+                                  write_summary)
 from largeq.scenario.spec import Scenario, scenario_to_toml
 from largeq.constants import MAX_DENSE_DIM, SWEEP_SEED
 
@@ -592,9 +593,8 @@ def _write_outputs(out: Path, scenario: Scenario, sizes, tasks, rows, options: S
                       for k in (table[0] if table else {}) if k != "d_eff_method"}}
     if table:
         tree["table"]["d_eff_method"] = [r["d_eff_method"] for r in table]
-    attrs = {"largeq_version": __version__, "scenario_toml": scenario_to_toml(scenario), "title": scenario.title,
-             "versions": package_versions(), "machine": run_metadata(), "options": asdict(options),
-             "fits": fits, "complete": complete}
+    attrs = run_attributes("sweep", scenario_to_toml(scenario), scenario.title, options=asdict(options), fits=fits,
+                           complete=complete)
     write_results(out / "results.h5", tree, attrs=attrs)
     if complete and table:
         _plots_and_report(out, scenario, table, fits, objs, names, options)

@@ -33,7 +33,7 @@ import numpy as np
 import scipy.interpolate
 
 from largeq import __version__
-from largeq.operators.problem import build_problem, spin_conventions
+from largeq.operators.problem import build_problem
 from largeq.engines.bounds import spectral_bounds
 from largeq.operators.linalg import apply_into
 from largeq.engines.typical import canonical_averages, microcanonical_average, solve_beta
@@ -41,8 +41,9 @@ from largeq.workflows.planning import MemoryForecast, available_bytes, check_fit
 from largeq.reports.progress import progress_bar
 from largeq.reports import html
 from largeq.reports import plots
-from largeq.reports.store import (Quantity, atomic_write_text, make_run_folder, package_versions,
-                                  run_metadata, write_results, write_summary)
+from largeq.reports.run_record import run_attributes
+from largeq.reports.store import (Quantity, atomic_write_text, make_run_folder, write_results,
+                                  write_summary)
 from largeq.workflows.errors import OptionError, WorkflowError
 from largeq.scenario.spec import Scenario, scenario_to_toml
 from largeq.workflows.spectra import BOUNDS_SEED, sector_note, state_vector, vector_dtype
@@ -325,18 +326,8 @@ def _finish(problem, text, folder, options, bounds, energy, width, canon, beta, 
                           "Rev. Mod. Phys. 78, 275 (2006))",
     }
     attrs = {
-        "largeq_version": __version__,
-        "command": "thermal",
-        "scenario_toml": text,
-        "title": scenario.title,
-        "conventions": spin_conventions(),
-        "versions": package_versions(),
-        "machine": run_metadata(),
-        "basis": problem.basis.describe(),
-        "basis_reason": problem.basis_reason,
+        **run_attributes("thermal", text, scenario.title, problem=problem),
         "ensemble_note": note,
-        "symmetries": problem.symmetries,
-        "initial_state": problem.start.label,
         "initial_weight_in_basis": captured,
         "state_energy": energy,
         "state_width": width,
