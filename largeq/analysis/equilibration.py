@@ -46,7 +46,8 @@ from largeq.engines.exact import ExactQuench, diagonalize, quench_exact
 from largeq.engines.kpm import (chebyshev_moments, chebyshev_scale, kernel_factors, local_density,
                                 reconstruct_cumulative, reconstruct_density)
 from largeq.engines.typical import canonical_averages, microcanonical_average, random_state, solve_beta
-from largeq.basis.blocks import (StateSubspace, SymmetryGroup, resolved_level_ratio, state_subspace,
+from largeq.analysis.levels import resolved_level_ratio
+from largeq.basis.blocks import (StateSubspace, SymmetryGroup, state_subspace,
                                  symmetry_blocks, symmetry_group)
 
 __all__ = [
