@@ -40,7 +40,7 @@ import numpy as np
 from largeq.model.pauli import PauliSum
 
 __all__ = ["Element", "IDENTITY", "compose", "inverse", "element_name", "apply_bits", "map_pauli",
-           "commutes", "closure", "candidates", "SymmetryGroup", "symmetry_group_of", "standard_group", "pauli_product",
+           "commutes", "same_operator", "closure", "candidates", "SymmetryGroup", "symmetry_group_of", "standard_group", "pauli_product",
            "commutator", "conserves_total_spin", "total_spin_squared", "block_characters"]
 
 Element = tuple  # (j, r, f)
@@ -115,6 +115,13 @@ def _terms(ps: PauliSum, tol: float) -> dict:
 
 def _same(a: dict, b: dict, tol: float) -> bool:
     return all(abs(a.get(k, 0) - b.get(k, 0)) <= tol for k in set(a) | set(b))
+
+
+def same_operator(a: PauliSum, b: PauliSum, tol: float | None = None) -> bool:
+    """A == B term by term (``tol`` relative to the largest coefficient by default)."""
+    scale = max(a.max_abs_coeff(), b.max_abs_coeff(), 1e-300)
+    tol = PAULI_TOL * scale if tol is None else tol
+    return _same(_terms(a, 0.1 * tol), _terms(b, 0.1 * tol), tol)
 
 
 def commutes(ps: PauliSum, a: Element, tol: float | None = None) -> bool:
