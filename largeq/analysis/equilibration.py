@@ -47,14 +47,17 @@ from largeq.engines.kpm import (chebyshev_moments, chebyshev_scale, kernel_facto
                                 reconstruct_cumulative, reconstruct_density)
 from largeq.engines.typical import canonical_averages, microcanonical_average, random_state, solve_beta
 from largeq.analysis.levels import resolved_level_ratio
-from largeq.basis.blocks import (StateSubspace, SymmetryGroup, state_subspace,
+from largeq.basis.blocks import (StateBlock, StateSubspace, SymmetryGroup, state_blocks, state_subspace,
                                  symmetry_blocks, symmetry_group)
+from largeq.engines.exact_split import quench_split, split_memory_bytes
 
 __all__ = [
     "DenseLimitError",
     "ObservableEquilibration",
     "ExactEquilibration",
     "exact_equilibration",
+    "ExactPlan",
+    "exact_plan",
     "SubspaceDensity",
     "DeffResult",
     "estimate_deff",
@@ -168,7 +171,7 @@ class ExactEquilibration:
     n_sites, basis_dim : int
         Chain length and dimension of the problem's basis.
     dim : int
-        Dimension actually diagonalized (the state's symmetric subspace when reduced).
+        Dimension actually diagonalized (sum of the blocks the state touches when reduced).
     subspace : str
         Which subspace, in words.
     d_eff, ipr : float
@@ -188,8 +191,10 @@ class ExactEquilibration:
     energies : ndarray
         Eigenvalues of the diagonalized space (ascending).
     quench : ExactQuench
-        The engine's full result (curve(), survival(), weights).
+        The engine's full result (survival(), weights; curve() only up to dimension 3000).
     seconds : float
+    block_dims : tuple of int
+        Dimensions of the blocks diagonalized one by one.
     """
 
     n_sites: int
@@ -210,6 +215,7 @@ class ExactEquilibration:
     energies: np.ndarray = field(repr=False)
     quench: ExactQuench = field(repr=False)
     seconds: float = 0.0
+    block_dims: tuple = ()
 
     def summary(self) -> dict:
         """Plain numbers for JSON (no arrays)."""
@@ -223,34 +229,108 @@ class ExactEquilibration:
                 "mean": self.level_ratio.mean_r, "stderr": self.level_ratio.stderr, "n": self.level_ratio.n,
                 "block": self.level_block, "goe": GOE_R, "poisson": POISSON_R},
             "observables": {n: o.__dict__.copy() for n, o in self.observables.items()},
-            "seconds": self.seconds,
+            "block_dimensions": list(self.block_dims), "seconds": self.seconds,
         }
+
+
+def _available_bytes() -> int:
+    """MemAvailable from /proc/meminfo (bytes); 8 GiB when unknown."""
+    try:
+        with open("/proc/meminfo") as fh:
+            for line in fh:
+                if line.startswith("MemAvailable:"):
+                    return int(line.split()[1]) * 1024
+    except OSError:
+        pass
+    return 8 * 2**30
+
+
+@dataclass(frozen=True)
+class ExactPlan:
+    """What exact equilibration would diagonalize, known before anything large is allocated.
+
+    Attributes
+    ----------
+    blocks : list of StateBlock
+        The symmetry blocks the state touches (label, dimension, weight), or one whole-basis entry.
+    largest : int
+        Largest block dimension (decides feasibility, not the basis dimension).
+    memory_bytes : int
+        Forecast peak of the dense work (``largeq.engines.exact_split.split_memory_bytes``).
+    complex_valued : bool
+    description : str
+    """
+
+    blocks: list
+    largest: int
+    memory_bytes: int
+    complex_valued: bool
+    description: str
+
+    @property
+    def dims(self) -> list:
+        return [b.dim for b in self.blocks]
+
+
+def exact_plan(problem, *, psi=None, group: SymmetryGroup | None = None, reduce: bool = True) -> ExactPlan:
+    """The blocks the state touches with their dimensions and weights, and the memory forecast.
+
+    Costs one pass per symmetry element over the basis (no block is built).
+    """
+    psi = _initial(problem, psi)
+    basis = problem.basis
+    group = _group_or_none(problem, group) if reduce else None
+    real_h = bool(problem.symmetries.get("real", False))
+    real_psi = bool(np.max(np.abs(psi.imag), initial=0.0) == 0.0)
+    if group is not None:
+        blocks = state_blocks(problem, psi, group=group)
+        complex_valued = (not real_h) or (not real_psi) or any(
+            abs(complex(v).imag) > 1e-14 for b in blocks for v in b.character.values())
+        desc = (f"{len(blocks)} symmetry block(s) touched by the initial state (dimensions "
+                f"{', '.join(f'{b.dim:,}' for b in blocks)} of {basis.dim:,}; {group.describe()})")
+    else:
+        blocks = [StateBlock(f"whole basis ({basis.label})", {}, int(basis.dim), 1.0)]
+        complex_valued = (not real_h) or (not real_psi)
+        desc = f"whole basis ({basis.label})"
+    dims = [b.dim for b in blocks]
+    return ExactPlan(blocks, max(dims), split_memory_bytes(dims, complex_valued), complex_valued, desc)
 
 
 def exact_equilibration(problem, *, max_dim: int = 13000, reduce: bool = True, psi=None,
                         level_statistics: bool = True, group: SymmetryGroup | None = None,
-                        observables=None) -> ExactEquilibration:
+                        observables=None, memory_limit: int | None = None,
+                        plan: ExactPlan | None = None) -> ExactEquilibration:
     """Exact d_eff, <A>_inf, sigma_A^2, fluctuation bounds, N(0) and <r> by dense diagonalization.
 
     d_eff = 1 / sum_E p_E^2 with p_E = ||P_E psi||^2; sigma_A^2 <= D_G (a_max - a_min)^2 / (4 d_eff).
+
+    The state is split over the symmetry blocks it touches (1-d characters of the symmetry group of H,
+    products of T, R, F included); each block is diagonalized on its own, observables enter with their
+    cross-block matrix elements, and levels degenerate across blocks are grouped into one eigenspace
+    (``largeq.engines.exact_split.quench_split``).  All results equal those of the whole basis.
 
     Parameters
     ----------
     problem : Problem
     max_dim : int
-        Largest dimension diagonalized densely (default 13000, about 4 GB and minutes on 2 cores);
-        larger raises :class:`DenseLimitError`.
+        Largest block diagonalized densely (default 13000, about 1.4 GB real and minutes on 2 cores);
+        a larger block raises :class:`DenseLimitError` before anything is allocated.
     reduce : bool
-        Diagonalize only the symmetric subspace that holds the state (exactly the same results,
-        see the module docstring); False uses the problem's whole basis.
+        Split over symmetry blocks (default); False diagonalizes the problem's whole basis.
     psi : ndarray, optional
         Initial state in the basis (default: the scenario's).
     level_statistics : bool
-        Compute <r> in the fully resolved block k = 0, all parities +1.
+        Compute <r> in the fully resolved block k = 0, all parities +1 (and one total spin S when H
+        conserves S^2).
     group : SymmetryGroup, optional
         Reuse an already built symmetry group.
     observables : sequence of str, optional
         Names to analyse (default all of the scenario's; ``[]`` for d_eff, N(0) and <r> only, much faster).
+    memory_limit : int, optional
+        Bytes the dense work may use (default 90 % of MemAvailable); a larger forecast raises
+        :class:`DenseLimitError`.
+    plan : ExactPlan, optional
+        From :func:`exact_plan` (reused).
 
     Returns
     -------
@@ -260,31 +340,59 @@ def exact_equilibration(problem, *, max_dim: int = 13000, reduce: bool = True, p
     psi = _initial(problem, psi)
     basis = problem.basis
     group = _group_or_none(problem, group) if (reduce or level_statistics) else group
-    if reduce and group is not None:
-        sub: StateSubspace = state_subspace(problem, psi, group=group)
-        q, vec, desc = sub.q, sub.psi, sub.description
-    else:
-        q, vec, desc = None, psi, f"whole basis ({basis.label})"
-    dim = basis.dim if q is None else q.shape[1]
-    if dim > max_dim:
+    if plan is None:
+        plan = exact_plan(problem, psi=psi, group=group, reduce=reduce)
+    dim = int(sum(plan.dims))
+    if plan.largest > max_dim:
         raise DenseLimitError(
-            f"dense diagonalization of dimension {dim:,} refused (max_dim = {max_dim:,}; {desc}); it would need "
-            f"about {3 * dim * dim * 8 / 2**30:.1f} GiB and O(D^3) time. Use a smaller chain or the KPM estimate."
-        )
-    h = problem.operator.to_csr()
-    hm = h.toarray() if q is None else _compress(q, h)
-    spec = diagonalize(hm)
-    del hm
+            f"dense diagonalization of a block of dimension {plan.largest:,} refused (max_dim = {max_dim:,}; "
+            f"{plan.description}); it would need about {plan.memory_bytes / 2**30:.1f} GiB and O(D^3) time. "
+            "Use a smaller chain or the KPM estimate.")
+    limit = int(0.9 * _available_bytes()) if memory_limit is None else int(memory_limit)
+    if plan.memory_bytes > limit:
+        raise DenseLimitError(
+            f"exact equilibration refused: forecast {plan.memory_bytes / 2**30:.1f} GiB > limit "
+            f"{limit / 2**30:.1f} GiB ({plan.description}); max_dim = {max_dim:,}")
     names = list(problem.observables) if observables is None else list(observables)
     for name in names:
         if name not in problem.observables:
             raise ValueError(f"observable {name!r} is not in the scenario ({', '.join(problem.observables)})")
+    h = problem.operator.to_csr()
+    sectors, qs = [], []
+    whole = len(plan.blocks) == 1 and not plan.blocks[0].character
+    for blk in plan.blocks:
+        if whole:
+            q, vec = None, psi
+            hm = h.toarray()
+        else:
+            q, vec = blk.build(group, psi)
+            hm = _compress(q, h)
+        spec = diagonalize(hm, max_dim=max_dim)
+        del hm
+        sectors.append((spec, vec))
+        qs.append(q)
+    del h
     obs = {}
     for name in names:
         a = problem.observable_operator(name).to_csr()
-        obs[name] = a.toarray() if q is None else _compress(q, a)
-    eq = quench_exact(spec, vec, obs, observable_extremes=False)
-    del obs
+        blocks = {}
+        for s in range(len(qs)):
+            for r in range(s, len(qs)):
+                if qs[s] is None:
+                    m = a
+                else:
+                    m = (qs[s].conj().T @ (a @ qs[r])).tocsr()
+                    m.eliminate_zeros()
+                    if m.nnz and float(abs(m).max()) < 1e-14:
+                        m = None
+                if m is not None and m.nnz:
+                    if np.iscomplexobj(m) and float(abs(m.imag).max() if m.nnz else 0.0) == 0.0:
+                        m = m.real
+                    blocks[(s, r)] = m
+        obs[name] = blocks
+    energies = np.sort(np.concatenate([sp_.energies for sp_, _ in sectors]))
+    eq = quench_split(sectors, obs, consume=True, keep_level_matrices=dim <= 3000)
+    del sectors, obs
     results = {}
     for name in names:
         o = problem.observables[name]
@@ -307,11 +415,12 @@ def exact_equilibration(problem, *, max_dim: int = 13000, reduce: bool = True, p
             block_desc = f"not available: {exc}"
     occupied = int(np.count_nonzero(eq.level_weights > 1e-14))
     return ExactEquilibration(
-        n_sites=problem.n_sites, basis_dim=int(basis.dim), dim=int(dim), subspace=desc, d_eff=eq.d_eff,
+        n_sites=problem.n_sites, basis_dim=int(basis.dim), dim=dim, subspace=plan.description, d_eff=eq.d_eff,
         ipr=eq.ipr, n_levels=int(eq.level_energies.size), n_occupied=occupied, energy_mean=eq.energy_mean,
         energy_variance=eq.energy_variance, gap_degeneracy=int(eq.gap_degeneracy),
         n_degenerate_gaps=int(eq.n_degenerate_gaps), observables=results, level_ratio=ratio,
-        level_block=block_desc, energies=spec.energies, quench=eq, seconds=time.perf_counter() - t0,
+        level_block=block_desc, energies=energies, quench=eq, seconds=time.perf_counter() - t0,
+        block_dims=tuple(plan.dims),
     )
 
 
