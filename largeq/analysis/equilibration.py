@@ -66,6 +66,7 @@ __all__ = [
     "thermal_values",
     "ExactThermal",
     "exact_thermal_values",
+    "conserved_left_out",
     "BOUNDS_SEED",
     "default_bounds",
 ]
@@ -759,6 +760,17 @@ class ThermalValues:
     n_vectors: int
     dimension: int
     seconds: float
+    left_out: str = ""
+
+
+def conserved_left_out(problem) -> str:
+    """The conserved quantities that canonical / microcanonical ensembles on the problem's basis leave out
+    (empty when none is known): the ensemble fixes the magnetization sector, not the total spin."""
+    if problem.symmetries.get("total_spin", False):
+        return ("total spin S^2: H is SU(2) symmetric, the ensemble fixes only the magnetization sector and mixes "
+                "all S, while the state's weights over S are conserved (compare with the diagonal ensemble "
+                "keeping this in mind, or use the exact per-S ensemble at small sizes)")
+    return ""
 
 
 def thermal_values(problem, energy: float, *, n_vectors: int = 10, rng: np.random.Generator,
@@ -788,6 +800,7 @@ def thermal_values(problem, energy: float, *, n_vectors: int = 10, rng: np.rando
     Returns
     -------
     ThermalValues
+        ``left_out`` names a conserved quantity the ensemble does not fix (total spin for SU(2)-symmetric H).
     """
     t0 = time.perf_counter()
     op = problem.operator
@@ -814,7 +827,7 @@ def thermal_values(problem, energy: float, *, n_vectors: int = 10, rng: np.rando
         m = microcanonical_average(op, obs, energy, width, n_vectors, child[1], bounds)
         mc, mc_err = dict(m.values), dict(m.errors)
     return ThermalValues(float(energy), float(beta), float(beta_err), can, can_err, mc, mc_err, float(width),
-                         int(n_vectors), int(problem.basis.dim), time.perf_counter() - t0)
+                         int(n_vectors), int(problem.basis.dim), time.perf_counter() - t0, conserved_left_out(problem))
 
 
 @dataclass(frozen=True)
@@ -826,11 +839,21 @@ class ExactThermal:
     energy, beta : float
         Target energy and the exact beta with Tr(H e^{-beta H}) / Z = E.
     canonical, microcanonical : dict name -> float
-        Tr(A e^{-beta H}) / Z and sum_m w_m A_mm / sum_m w_m, w_m = exp(-(E_m - E)^2 / (2 width^2)).
+        Tr(A e^{-beta H}) / Z and sum_m w_m A_mm / sum_m w_m, w_m = exp(-(E_m - E)^2 / (2 width^2));
+        when the total spin is resolved: sum_S w_S <A>_S, each S ensemble at the state's energy in S.
     width : float
     n_blocks : int
     energies : ndarray
         The whole basis spectrum (ascending).
+    ensemble : str
+        What the ensemble fixes (and what it leaves out).
+    canonical_mixed, microcanonical_mixed : dict name -> float
+        The values of the ensemble over the whole basis (all S mixed); equal to ``canonical`` /
+        ``microcanonical`` when S is not resolved.
+    spin_weights : dict S -> float
+        The state's weight ||P_S psi||^2 in each total spin S (empty when not resolved).
+    spin_energies, spin_betas : dict S -> float
+        The state's mean energy in each S and the beta of that S ensemble.
     """
 
     energy: float
@@ -840,14 +863,54 @@ class ExactThermal:
     width: float
     n_blocks: int
     energies: np.ndarray = field(repr=False)
+    ensemble: str = "canonical and microcanonical ensembles of the basis"
+    canonical_mixed: dict = field(default_factory=dict)
+    microcanonical_mixed: dict = field(default_factory=dict)
+    spin_weights: dict = field(default_factory=dict)
+    spin_energies: dict = field(default_factory=dict)
+    spin_betas: dict = field(default_factory=dict)
+
+
+def _solve_beta_exact(e: np.ndarray, energy: float) -> float:
+    """beta with sum_m e^{-beta E_m} E_m / Z = energy (+-inf at or beyond the spectrum's ends)."""
+    if energy <= e[0]:
+        return float("inf")
+    if energy >= e[-1]:
+        return float("-inf")
+
+    def mean_e(beta):
+        w = np.exp(-beta * (e - e[0] if beta >= 0 else e - e[-1]))
+        return float(np.dot(w, e) / w.sum())
+
+    lo, hi = -1.0, 1.0
+    while mean_e(hi) > energy:
+        hi *= 2.0
+    while mean_e(lo) < energy:
+        lo *= 2.0
+    return float(scipy.optimize.brentq(lambda b: mean_e(b) - energy, lo, hi, xtol=1e-14))
+
+
+def _canonical_weights(e: np.ndarray, beta: float) -> np.ndarray:
+    if beta == float("inf"):
+        return (e <= e[0] + 1e-9 * max(1.0, abs(e[0]))).astype(float)
+    if beta == float("-inf"):
+        return (e >= e[-1] - 1e-9 * max(1.0, abs(e[-1]))).astype(float)
+    return np.exp(-beta * (e - e[0] if beta >= 0 else e - e[-1]))
 
 
 def exact_thermal_values(problem, energy: float, *, width: float | None = None, max_dim: int = 13000,
-                         group: SymmetryGroup | None = None) -> ExactThermal:
+                         group: SymmetryGroup | None = None, psi=None,
+                         resolve_total_spin: bool | None = None) -> ExactThermal:
     """Canonical and microcanonical values from full diagonalization, block by block.
 
     Tr(A f(H)) = sum_b Tr(Q_b^dagger A Q_b f(H_b)) holds for every A because the ensemble is
     symmetric: Q_b^dagger g A g^{-1} Q_b = Q_b^dagger A Q_b for 1-d representations.
+
+    Total spin.  When H conserves S^2 (``resolve_total_spin`` None: from ``problem.symmetries``) and the
+    initial state ``psi`` is given, each eigenvector gets its S (``largeq.analysis.levels.spin_resolve``) and
+    the ensemble is resolved in S: for every S with weight w_S = ||P_S psi||^2 > 1e-12, a canonical (beta_S
+    fixed by the state's mean energy in S) and a microcanonical ensemble (window at that energy) over the
+    levels of that S, combined as sum_S w_S <A>_S -- the ensemble that keeps the conserved weights over S.
 
     Parameters
     ----------
@@ -858,19 +921,38 @@ def exact_thermal_values(problem, energy: float, *, width: float | None = None, 
     max_dim : int
         Largest block diagonalized.
     group : SymmetryGroup, optional
+    psi : ndarray, optional
+        Initial state in the basis (needed to resolve the total spin).
+    resolve_total_spin : bool, optional
     """
+    from largeq.analysis.levels import _s2_block, spin_resolve, spin_squared_csr
+
     group = _group_or_none(problem, group)
     if group is None:
         raise DenseLimitError("basis too large for the symmetry tables")
+    if resolve_total_spin is None:
+        resolve_total_spin = bool(problem.symmetries.get("total_spin", False)) and psi is not None
+    if resolve_total_spin and psi is None:
+        raise ValueError("resolving the total spin needs the initial state psi")
     blocks = symmetry_blocks(problem, group=group)
     h = problem.operator.to_csr()
     a_csr = {n: problem.observable_operator(n).to_csr() for n in problem.observables}
-    es, diags = [], {n: [] for n in a_csr}
+    if psi is not None:
+        psi = _initial(problem, psi)
+    es, spins, pw, diags = [], [], [], {n: [] for n in a_csr}
+    s2 = spin_squared_csr(problem) if resolve_total_spin else None
     for blk in blocks:
         if blk.dim > max_dim:
             raise DenseLimitError(f"block {blk.label} has dimension {blk.dim:,} > max_dim = {max_dim:,}")
-        e, v = scipy.linalg.eigh(blk.hamiltonian(h), check_finite=False)
+        if resolve_total_spin:
+            res = spin_resolve(blk.hamiltonian(h), _s2_block(problem, blk, s2))
+            e, v = res.energies, res.vectors
+            spins.append(res.spins)
+        else:
+            e, v = scipy.linalg.eigh(blk.hamiltonian(h), check_finite=False)
         es.append(e)
+        if resolve_total_spin:
+            pw.append(np.abs(v.conj().T @ (blk.q.conj().T @ psi)) ** 2)
         for n, a in a_csr.items():
             ab = (blk.q.conj().T @ (a @ blk.q)).toarray()
             diags[n].append(np.real(np.einsum("im,im->m", v.conj(), ab @ v)))
@@ -878,23 +960,46 @@ def exact_thermal_values(problem, energy: float, *, width: float | None = None, 
     order = np.argsort(e)
     e = e[order]
     dm = {n: np.concatenate(d)[order] for n, d in diags.items()}
-
-    def mean_e(beta):
-        w = np.exp(-beta * (e - e[0] if beta >= 0 else e - e[-1]))
-        return float(np.dot(w, e) / w.sum())
-
     if not (e[0] < energy < e[-1]):
         raise ValueError(f"energy {energy} outside the spectrum [{e[0]}, {e[-1]}]")
-    lo, hi = -1.0, 1.0
-    while mean_e(hi) > energy:
-        hi *= 2.0
-    while mean_e(lo) < energy:
-        lo *= 2.0
-    beta = float(scipy.optimize.brentq(lambda b: mean_e(b) - energy, lo, hi, xtol=1e-14))
-    w = np.exp(-beta * (e - e[0] if beta >= 0 else e - e[-1]))
+    beta = _solve_beta_exact(e, energy)
+    w = _canonical_weights(e, beta)
     can = {n: float(np.dot(w, d) / w.sum()) for n, d in dm.items()}
     if width is None:
         width = 0.02 * (e[-1] - e[0])
     wm = np.exp(-((e - energy) ** 2) / (2.0 * width**2))
     mc = {n: float(np.dot(wm, d) / wm.sum()) for n, d in dm.items()}
-    return ExactThermal(float(energy), beta, can, mc, float(width), len(blocks), e)
+    if not resolve_total_spin:
+        return ExactThermal(float(energy), beta, can, mc, float(width), len(blocks), e,
+                            canonical_mixed=dict(can), microcanonical_mixed=dict(mc))
+    sp_all = np.concatenate(spins)[order]
+    p_all = np.concatenate(pw)[order]
+    can_s = {n: 0.0 for n in dm}
+    mc_s = {n: 0.0 for n in dm}
+    weights, energies_s, betas = {}, {}, {}
+    for s_val in np.unique(sp_all):
+        sel = sp_all == s_val
+        ws = float(p_all[sel].sum())
+        if ws <= 1e-12:
+            continue
+        es_ = e[sel]
+        e_s = float(np.dot(p_all[sel], es_) / ws)
+        b_s = _solve_beta_exact(es_, e_s) if es_.size > 1 else float("inf")
+        wc = _canonical_weights(es_, b_s)
+        wmc = np.exp(-((es_ - e_s) ** 2) / (2.0 * width**2))
+        if not wmc.sum() > 0:
+            wmc = wc
+        for n, d in dm.items():
+            can_s[n] += ws * float(np.dot(wc, d[sel]) / wc.sum())
+            mc_s[n] += ws * float(np.dot(wmc, d[sel]) / wmc.sum())
+        weights[float(s_val)] = ws
+        energies_s[float(s_val)] = e_s
+        betas[float(s_val)] = b_s
+    tot = sum(weights.values())
+    can_s = {n: v / tot for n, v in can_s.items()}
+    mc_s = {n: v / tot for n, v in mc_s.items()}
+    ens = ("canonical and microcanonical ensembles resolved in the conserved total spin S: one ensemble per S at "
+           "the state's energy in S, weighted by the state's weight in S")
+    return ExactThermal(float(energy), beta, can_s, mc_s, float(width), len(blocks), e, ensemble=ens,
+                        canonical_mixed=can, microcanonical_mixed=mc, spin_weights=weights,
+                        spin_energies=energies_s, spin_betas=betas)

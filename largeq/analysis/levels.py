@@ -67,8 +67,13 @@ def spin_resolve(h_block: np.ndarray, s2_block, *, vectors: bool = True) -> Spin
     return SpinResolved(e, v if vectors else None, spins)
 
 
-def _s2_block(problem, blk):
-    s2 = PauliOperator(total_spin_squared(problem.n_sites), problem.basis).to_csr()
+def spin_squared_csr(problem):
+    """S^2 on the problem's basis (CSR)."""
+    return PauliOperator(total_spin_squared(problem.n_sites), problem.basis).to_csr()
+
+
+def _s2_block(problem, blk, s2=None):
+    s2 = spin_squared_csr(problem) if s2 is None else s2
     m = (blk.q.conj().T @ (s2 @ blk.q)).toarray()
     return m.real if np.iscomplexobj(m) and np.max(np.abs(m.imag), initial=0.0) < 1e-13 else m
 
