@@ -18,7 +18,7 @@ import numpy as np
 import scipy.linalg
 
 from largeq.analysis.bounds import SpacingRatio, level_spacing_ratio
-from largeq.basis.blocks import SymmetryGroup, symmetry_blocks, symmetry_group
+from largeq.basis.blocks import Block, SymmetryGroup, symmetry_blocks, symmetry_group
 from largeq.model.symmetry import total_spin_squared
 from largeq.operators.pauli_operator import PauliOperator
 
@@ -116,13 +116,14 @@ def resolved_level_ratio(problem, *, which: str | dict = "trivial", central_frac
     if resolve_total_spin is None:
         resolve_total_spin = bool(problem.symmetries.get("total_spin", False))
     if resolve_total_spin:
-        per = level_ratios_by_spin(problem, blk, central_fraction=central_fraction)
-        if not per:
-            raise ValueError(f"no (block, S) sub-block of {blk.label} has enough levels")
-        s, (ratio, n) = max(per.items(), key=lambda kv: kv[1][1])
-        from largeq.basis.blocks import Block
-        blk = Block(f"{blk.label}, S = {s:g} ({n} levels)", blk.quantum_numbers, blk.q)
-        return ratio, blk, group
+        per = level_ratios_by_spin(problem, blk, central_fraction=central_fraction, min_levels=10)
+        if per:
+            s, (ratio, n) = max(per.items(), key=lambda kv: kv[1][1])
+            blk = Block(f"{blk.label}, total spin S = {s:g} ({n} levels)", blk.quantum_numbers, blk.q)
+            return ratio, blk, group
+        # too few levels in every S: the block's <r> mixes independent S spectra (biased towards Poisson)
+        blk = Block(f"{blk.label}, total spin NOT resolved (fewer than 10 levels per S; <r> biased low)",
+                    blk.quantum_numbers, blk.q)
     h = problem.operator.to_csr()
     e = scipy.linalg.eigvalsh(blk.hamiltonian(h), check_finite=False)
     return level_spacing_ratio(e, central_fraction=central_fraction), blk, group
