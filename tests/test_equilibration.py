@@ -16,7 +16,7 @@ from largeq.engines.propagate import evolve
 from largeq.analysis.equilibration import (DenseLimitError, default_bounds, estimate_deff,
                                            exact_equilibration, exact_thermal_values, integrability_warning)
 from largeq.scenario.spec import parse_scenario, scenario_to_dict
-from largeq.analysis.equilibration import resolved_level_ratio
+from largeq.analysis.levels import resolved_level_ratio
 from largeq.basis.blocks import symmetry_blocks, symmetry_group
 
 

@@ -365,7 +365,9 @@ def test_symmetries_match_dense_checks(case):
     L = case.pop("L")
     boundary = case.pop("boundary", "periodic")
     s = scen(L, boundary, **case)
-    assert model.symmetries(s) == dense_symmetries(s)
+    dense_sym = dense_symmetries(s)
+    sym = model.symmetries(s)
+    assert {k: sym[k] for k in dense_sym} == dense_sym
 
 
 def test_symmetries_examples_of_each_answer():

@@ -39,15 +39,17 @@ import numpy as np
 import scipy.linalg
 import scipy.optimize
 
-from largeq.analysis.equilibrium_formulas import (GOE_R, POISSON_R, DeffEstimate, SpacingRatio, amplitude_eta, level_spacing_ratio,
-                                    deff_from_densities, fluctuation_bound, survival_plateau)
+from largeq.analysis.equilibrium_formulas import (GOE_R, POISSON_R, DeffEstimate, SpacingRatio, amplitude_eta, deff_from_densities,
+                                    fluctuation_bound, survival_plateau)
 from largeq.engines.bounds import spectral_bounds
-from largeq.engines.exact import ExactQuench, diagonalize, quench_exact
+from largeq.engines.exact import ExactQuench, diagonalize
 from largeq.engines.kpm import (chebyshev_moments, chebyshev_scale, kernel_factors, local_density,
                                 reconstruct_cumulative, reconstruct_density)
 from largeq.engines.typical import canonical_averages, microcanonical_average, random_state, solve_beta
-from largeq.basis.blocks import (StateSubspace, SymmetryGroup, state_subspace,
-                                 symmetry_blocks, symmetry_group)
+from largeq.analysis.levels import resolved_level_ratio
+from largeq.basis.blocks import (StateBlock, SymmetryGroup, state_blocks, state_subspace, symmetry_blocks,
+                                 symmetry_group)
+from largeq.engines.exact_split import quench_split, split_memory_bytes
 from largeq.constants import BOUNDS_SEED, MAX_DENSE_DIM
 
 __all__ = [
@@ -55,6 +57,8 @@ __all__ = [
     "ObservableEquilibration",
     "ExactEquilibration",
     "exact_equilibration",
+    "ExactPlan",
+    "exact_plan",
     "SubspaceDensity",
     "DeffResult",
     "estimate_deff",
@@ -63,6 +67,7 @@ __all__ = [
     "thermal_values",
     "ExactThermal",
     "exact_thermal_values",
+    "conserved_left_out",
     "BOUNDS_SEED",
     "default_bounds",
 ]
@@ -70,28 +75,6 @@ __all__ = [
 #: Fixed seed of the Lanczos start vector for spectral bounds (bounds are reproducible).
 #: Above this many (group elements x basis states) the symmetry permutations are not built.
 MAX_PERMUTATION_ENTRIES = 200_000_000
-
-
-def resolved_level_ratio(problem, *, which: str | dict = "trivial", central_fraction: float = 0.5,
-                         max_dim: int = MAX_DENSE_DIM, group: SymmetryGroup | None = None):
-    """<r> in one fully resolved block (default k = 0 and all parities +1).
-
-    Returns
-    -------
-    (SpacingRatio, Block, SymmetryGroup)
-        The spacing ratio of the block's eigenvalues (central fraction of the spectrum), the block
-        (its label and dimension) and the group (which symmetries were resolved).
-    """
-    group = group or symmetry_group(problem)
-    blocks = symmetry_blocks(problem, group=group, which=which)
-    if not blocks:
-        raise ValueError(f"the block {which!r} is empty for this basis")
-    blk = blocks[0]
-    if blk.dim > max_dim:
-        raise ValueError(f"block {blk.label} has dimension {blk.dim:,} > max_dim = {max_dim:,}")
-    h = problem.operator.to_csr()
-    e = scipy.linalg.eigvalsh(blk.hamiltonian(h), check_finite=False)
-    return level_spacing_ratio(e, central_fraction=central_fraction), blk, group
 
 
 def default_bounds(op):
@@ -189,7 +172,7 @@ class ExactEquilibration:
     n_sites, basis_dim : int
         Chain length and dimension of the problem's basis.
     dim : int
-        Dimension actually diagonalized (the state's symmetric subspace when reduced).
+        Dimension actually diagonalized (sum of the blocks the state touches when reduced).
     subspace : str
         Which subspace, in words.
     d_eff, ipr : float
@@ -209,8 +192,10 @@ class ExactEquilibration:
     energies : ndarray
         Eigenvalues of the diagonalized space (ascending).
     quench : ExactQuench
-        The engine's full result (curve(), survival(), weights).
+        The engine's full result (survival(), weights; curve() only up to dimension 3000).
     seconds : float
+    block_dims : tuple of int
+        Dimensions of the blocks diagonalized one by one.
     """
 
     n_sites: int
@@ -231,6 +216,7 @@ class ExactEquilibration:
     energies: np.ndarray = field(repr=False)
     quench: ExactQuench = field(repr=False)
     seconds: float = 0.0
+    block_dims: tuple = ()
 
     def summary(self) -> dict:
         """Plain numbers for JSON (no arrays)."""
@@ -244,34 +230,108 @@ class ExactEquilibration:
                 "mean": self.level_ratio.mean_r, "stderr": self.level_ratio.stderr, "n": self.level_ratio.n,
                 "block": self.level_block, "goe": GOE_R, "poisson": POISSON_R},
             "observables": {n: o.__dict__.copy() for n, o in self.observables.items()},
-            "seconds": self.seconds,
+            "block_dimensions": list(self.block_dims), "seconds": self.seconds,
         }
+
+
+def _available_bytes() -> int:
+    """MemAvailable from /proc/meminfo (bytes); 8 GiB when unknown."""
+    try:
+        with open("/proc/meminfo") as fh:
+            for line in fh:
+                if line.startswith("MemAvailable:"):
+                    return int(line.split()[1]) * 1024
+    except OSError:
+        pass
+    return 8 * 2**30
+
+
+@dataclass(frozen=True)
+class ExactPlan:
+    """What exact equilibration would diagonalize, known before anything large is allocated.
+
+    Attributes
+    ----------
+    blocks : list of StateBlock
+        The symmetry blocks the state touches (label, dimension, weight), or one whole-basis entry.
+    largest : int
+        Largest block dimension (decides feasibility, not the basis dimension).
+    memory_bytes : int
+        Forecast peak of the dense work (``largeq.engines.exact_split.split_memory_bytes``).
+    complex_valued : bool
+    description : str
+    """
+
+    blocks: list
+    largest: int
+    memory_bytes: int
+    complex_valued: bool
+    description: str
+
+    @property
+    def dims(self) -> list:
+        return [b.dim for b in self.blocks]
+
+
+def exact_plan(problem, *, psi=None, group: SymmetryGroup | None = None, reduce: bool = True) -> ExactPlan:
+    """The blocks the state touches with their dimensions and weights, and the memory forecast.
+
+    Costs one pass per symmetry element over the basis (no block is built).
+    """
+    psi = _initial(problem, psi)
+    basis = problem.basis
+    group = _group_or_none(problem, group) if reduce else None
+    real_h = bool(problem.symmetries.get("real", False))
+    real_psi = bool(np.max(np.abs(psi.imag), initial=0.0) == 0.0)
+    if group is not None:
+        blocks = state_blocks(problem, psi, group=group)
+        complex_valued = (not real_h) or (not real_psi) or any(
+            abs(complex(v).imag) > 1e-14 for b in blocks for v in b.character.values())
+        desc = (f"{len(blocks)} symmetry block(s) touched by the initial state (dimensions "
+                f"{', '.join(f'{b.dim:,}' for b in blocks)} of {basis.dim:,}; {group.describe()})")
+    else:
+        blocks = [StateBlock(f"whole basis ({basis.label})", {}, int(basis.dim), 1.0)]
+        complex_valued = (not real_h) or (not real_psi)
+        desc = f"whole basis ({basis.label})"
+    dims = [b.dim for b in blocks]
+    return ExactPlan(blocks, max(dims), split_memory_bytes(dims, complex_valued), complex_valued, desc)
 
 
 def exact_equilibration(problem, *, max_dim: int = MAX_DENSE_DIM, reduce: bool = True, psi=None,
                         level_statistics: bool = True, group: SymmetryGroup | None = None,
-                        observables=None) -> ExactEquilibration:
+                        observables=None, memory_limit: int | None = None,
+                        plan: ExactPlan | None = None) -> ExactEquilibration:
     """Exact d_eff, <A>_inf, sigma_A^2, fluctuation bounds, N(0) and <r> by dense diagonalization.
 
     d_eff = 1 / sum_E p_E^2 with p_E = ||P_E psi||^2; sigma_A^2 <= D_G (a_max - a_min)^2 / (4 d_eff).
+
+    The state is split over the symmetry blocks it touches (1-d characters of the symmetry group of H,
+    products of T, R, F included); each block is diagonalized on its own, observables enter with their
+    cross-block matrix elements, and levels degenerate across blocks are grouped into one eigenspace
+    (``largeq.engines.exact_split.quench_split``).  All results equal those of the whole basis.
 
     Parameters
     ----------
     problem : Problem
     max_dim : int
-        Largest dimension diagonalized densely (default 13000, about 4 GB and minutes on 2 cores);
-        larger raises :class:`DenseLimitError`.
+        Largest block diagonalized densely (default 13000, about 1.4 GB real and minutes on 2 cores);
+        a larger block raises :class:`DenseLimitError` before anything is allocated.
     reduce : bool
-        Diagonalize only the symmetric subspace that holds the state (exactly the same results,
-        see the module docstring); False uses the problem's whole basis.
+        Split over symmetry blocks (default); False diagonalizes the problem's whole basis.
     psi : ndarray, optional
         Initial state in the basis (default: the scenario's).
     level_statistics : bool
-        Compute <r> in the fully resolved block k = 0, all parities +1.
+        Compute <r> in the fully resolved block k = 0, all parities +1 (and one total spin S when H
+        conserves S^2).
     group : SymmetryGroup, optional
         Reuse an already built symmetry group.
     observables : sequence of str, optional
         Names to analyse (default all of the scenario's; ``[]`` for d_eff, N(0) and <r> only, much faster).
+    memory_limit : int, optional
+        Bytes the dense work may use (default 90 % of MemAvailable); a larger forecast raises
+        :class:`DenseLimitError`.
+    plan : ExactPlan, optional
+        From :func:`exact_plan` (reused).
 
     Returns
     -------
@@ -281,31 +341,59 @@ def exact_equilibration(problem, *, max_dim: int = MAX_DENSE_DIM, reduce: bool =
     psi = _initial(problem, psi)
     basis = problem.basis
     group = _group_or_none(problem, group) if (reduce or level_statistics) else group
-    if reduce and group is not None:
-        sub: StateSubspace = state_subspace(problem, psi, group=group)
-        q, vec, desc = sub.q, sub.psi, sub.description
-    else:
-        q, vec, desc = None, psi, f"whole basis ({basis.label})"
-    dim = basis.dim if q is None else q.shape[1]
-    if dim > max_dim:
+    if plan is None:
+        plan = exact_plan(problem, psi=psi, group=group, reduce=reduce)
+    dim = int(sum(plan.dims))
+    if plan.largest > max_dim:
         raise DenseLimitError(
-            f"dense diagonalization of dimension {dim:,} refused (max_dim = {max_dim:,}; {desc}); it would need "
-            f"about {3 * dim * dim * 8 / 2**30:.1f} GiB and O(D^3) time. Use a smaller chain or the KPM estimate."
-        )
-    h = problem.operator.to_csr()
-    hm = h.toarray() if q is None else _compress(q, h)
-    spec = diagonalize(hm)
-    del hm
+            f"dense diagonalization of a block of dimension {plan.largest:,} refused (max_dim = {max_dim:,}; "
+            f"{plan.description}); it would need about {plan.memory_bytes / 2**30:.1f} GiB and O(D^3) time. "
+            "Use a smaller chain or the KPM estimate.")
+    limit = int(0.9 * _available_bytes()) if memory_limit is None else int(memory_limit)
+    if plan.memory_bytes > limit:
+        raise DenseLimitError(
+            f"exact equilibration refused: forecast {plan.memory_bytes / 2**30:.1f} GiB > limit "
+            f"{limit / 2**30:.1f} GiB ({plan.description}); max_dim = {max_dim:,}")
     names = list(problem.observables) if observables is None else list(observables)
     for name in names:
         if name not in problem.observables:
             raise ValueError(f"observable {name!r} is not in the scenario ({', '.join(problem.observables)})")
+    h = problem.operator.to_csr()
+    sectors, qs = [], []
+    whole = len(plan.blocks) == 1 and not plan.blocks[0].character
+    for blk in plan.blocks:
+        if whole:
+            q, vec = None, psi
+            hm = h.toarray()
+        else:
+            q, vec = blk.build(group, psi)
+            hm = _compress(q, h)
+        spec = diagonalize(hm, max_dim=max_dim)
+        del hm
+        sectors.append((spec, vec))
+        qs.append(q)
+    del h
     obs = {}
     for name in names:
         a = problem.observable_operator(name).to_csr()
-        obs[name] = a.toarray() if q is None else _compress(q, a)
-    eq = quench_exact(spec, vec, obs, observable_extremes=False)
-    del obs
+        blocks = {}
+        for s in range(len(qs)):
+            for r in range(s, len(qs)):
+                if qs[s] is None:
+                    m = a
+                else:
+                    m = (qs[s].conj().T @ (a @ qs[r])).tocsr()
+                    m.eliminate_zeros()
+                    if m.nnz and float(abs(m).max()) < 1e-14:
+                        m = None
+                if m is not None and m.nnz:
+                    if np.iscomplexobj(m) and float(abs(m.imag).max() if m.nnz else 0.0) == 0.0:
+                        m = m.real
+                    blocks[(s, r)] = m
+        obs[name] = blocks
+    energies = np.sort(np.concatenate([sp_.energies for sp_, _ in sectors]))
+    eq = quench_split(sectors, obs, consume=True, keep_level_matrices=dim <= 3000)
+    del sectors, obs
     results = {}
     for name in names:
         o = problem.observables[name]
@@ -328,11 +416,12 @@ def exact_equilibration(problem, *, max_dim: int = MAX_DENSE_DIM, reduce: bool =
             block_desc = f"not available: {exc}"
     occupied = int(np.count_nonzero(eq.level_weights > 1e-14))
     return ExactEquilibration(
-        n_sites=problem.n_sites, basis_dim=int(basis.dim), dim=int(dim), subspace=desc, d_eff=eq.d_eff,
+        n_sites=problem.n_sites, basis_dim=int(basis.dim), dim=dim, subspace=plan.description, d_eff=eq.d_eff,
         ipr=eq.ipr, n_levels=int(eq.level_energies.size), n_occupied=occupied, energy_mean=eq.energy_mean,
         energy_variance=eq.energy_variance, gap_degeneracy=int(eq.gap_degeneracy),
         n_degenerate_gaps=int(eq.n_degenerate_gaps), observables=results, level_ratio=ratio,
-        level_block=block_desc, energies=spec.energies, quench=eq, seconds=time.perf_counter() - t0,
+        level_block=block_desc, energies=energies, quench=eq, seconds=time.perf_counter() - t0,
+        block_dims=tuple(plan.dims),
     )
 
 
@@ -671,6 +760,17 @@ class ThermalValues:
     n_vectors: int
     dimension: int
     seconds: float
+    left_out: str = ""
+
+
+def conserved_left_out(problem) -> str:
+    """The conserved quantities that canonical / microcanonical ensembles on the problem's basis leave out
+    (empty when none is known): the ensemble fixes the magnetization sector, not the total spin."""
+    if problem.symmetries.get("total_spin", False):
+        return ("total spin S^2: H is SU(2) symmetric, the ensemble fixes only the magnetization sector and mixes "
+                "all S, while the state's weights over S are conserved (compare with the diagonal ensemble "
+                "keeping this in mind, or use the exact per-S ensemble at small sizes)")
+    return ""
 
 
 def thermal_values(problem, energy: float, *, n_vectors: int = 10, rng: np.random.Generator,
@@ -700,6 +800,7 @@ def thermal_values(problem, energy: float, *, n_vectors: int = 10, rng: np.rando
     Returns
     -------
     ThermalValues
+        ``left_out`` names a conserved quantity the ensemble does not fix (total spin for SU(2)-symmetric H).
     """
     t0 = time.perf_counter()
     op = problem.operator
@@ -726,7 +827,7 @@ def thermal_values(problem, energy: float, *, n_vectors: int = 10, rng: np.rando
         m = microcanonical_average(op, obs, energy, width, n_vectors, child[1], bounds)
         mc, mc_err = dict(m.values), dict(m.errors)
     return ThermalValues(float(energy), float(beta), float(beta_err), can, can_err, mc, mc_err, float(width),
-                         int(n_vectors), int(problem.basis.dim), time.perf_counter() - t0)
+                         int(n_vectors), int(problem.basis.dim), time.perf_counter() - t0, conserved_left_out(problem))
 
 
 @dataclass(frozen=True)
@@ -738,11 +839,21 @@ class ExactThermal:
     energy, beta : float
         Target energy and the exact beta with Tr(H e^{-beta H}) / Z = E.
     canonical, microcanonical : dict name -> float
-        Tr(A e^{-beta H}) / Z and sum_m w_m A_mm / sum_m w_m, w_m = exp(-(E_m - E)^2 / (2 width^2)).
+        Tr(A e^{-beta H}) / Z and sum_m w_m A_mm / sum_m w_m, w_m = exp(-(E_m - E)^2 / (2 width^2));
+        when the total spin is resolved: sum_S w_S <A>_S, each S ensemble at the state's energy in S.
     width : float
     n_blocks : int
     energies : ndarray
         The whole basis spectrum (ascending).
+    ensemble : str
+        What the ensemble fixes (and what it leaves out).
+    canonical_mixed, microcanonical_mixed : dict name -> float
+        The values of the ensemble over the whole basis (all S mixed); equal to ``canonical`` /
+        ``microcanonical`` when S is not resolved.
+    spin_weights : dict S -> float
+        The state's weight ||P_S psi||^2 in each total spin S (empty when not resolved).
+    spin_energies, spin_betas : dict S -> float
+        The state's mean energy in each S and the beta of that S ensemble.
     """
 
     energy: float
@@ -752,14 +863,54 @@ class ExactThermal:
     width: float
     n_blocks: int
     energies: np.ndarray = field(repr=False)
+    ensemble: str = "canonical and microcanonical ensembles of the basis"
+    canonical_mixed: dict = field(default_factory=dict)
+    microcanonical_mixed: dict = field(default_factory=dict)
+    spin_weights: dict = field(default_factory=dict)
+    spin_energies: dict = field(default_factory=dict)
+    spin_betas: dict = field(default_factory=dict)
+
+
+def _solve_beta_exact(e: np.ndarray, energy: float) -> float:
+    """beta with sum_m e^{-beta E_m} E_m / Z = energy (+-inf at or beyond the spectrum's ends)."""
+    if energy <= e[0]:
+        return float("inf")
+    if energy >= e[-1]:
+        return float("-inf")
+
+    def mean_e(beta):
+        w = np.exp(-beta * (e - e[0] if beta >= 0 else e - e[-1]))
+        return float(np.dot(w, e) / w.sum())
+
+    lo, hi = -1.0, 1.0
+    while mean_e(hi) > energy:
+        hi *= 2.0
+    while mean_e(lo) < energy:
+        lo *= 2.0
+    return float(scipy.optimize.brentq(lambda b: mean_e(b) - energy, lo, hi, xtol=1e-14))
+
+
+def _canonical_weights(e: np.ndarray, beta: float) -> np.ndarray:
+    if beta == float("inf"):
+        return (e <= e[0] + 1e-9 * max(1.0, abs(e[0]))).astype(float)
+    if beta == float("-inf"):
+        return (e >= e[-1] - 1e-9 * max(1.0, abs(e[-1]))).astype(float)
+    return np.exp(-beta * (e - e[0] if beta >= 0 else e - e[-1]))
 
 
 def exact_thermal_values(problem, energy: float, *, width: float | None = None, max_dim: int = MAX_DENSE_DIM,
-                         group: SymmetryGroup | None = None) -> ExactThermal:
+                         group: SymmetryGroup | None = None, psi=None,
+                         resolve_total_spin: bool | None = None) -> ExactThermal:
     """Canonical and microcanonical values from full diagonalization, block by block.
 
     Tr(A f(H)) = sum_b Tr(Q_b^dagger A Q_b f(H_b)) holds for every A because the ensemble is
     symmetric: Q_b^dagger g A g^{-1} Q_b = Q_b^dagger A Q_b for 1-d representations.
+
+    Total spin.  When H conserves S^2 (``resolve_total_spin`` None: from ``problem.symmetries``) and the
+    initial state ``psi`` is given, each eigenvector gets its S (``largeq.analysis.levels.spin_resolve``) and
+    the ensemble is resolved in S: for every S with weight w_S = ||P_S psi||^2 > 1e-12, a canonical (beta_S
+    fixed by the state's mean energy in S) and a microcanonical ensemble (window at that energy) over the
+    levels of that S, combined as sum_S w_S <A>_S -- the ensemble that keeps the conserved weights over S.
 
     Parameters
     ----------
@@ -770,19 +921,38 @@ def exact_thermal_values(problem, energy: float, *, width: float | None = None, 
     max_dim : int
         Largest block diagonalized.
     group : SymmetryGroup, optional
+    psi : ndarray, optional
+        Initial state in the basis (needed to resolve the total spin).
+    resolve_total_spin : bool, optional
     """
+    from largeq.analysis.levels import _s2_block, spin_resolve, spin_squared_csr
+
     group = _group_or_none(problem, group)
     if group is None:
         raise DenseLimitError("basis too large for the symmetry tables")
+    if resolve_total_spin is None:
+        resolve_total_spin = bool(problem.symmetries.get("total_spin", False)) and psi is not None
+    if resolve_total_spin and psi is None:
+        raise ValueError("resolving the total spin needs the initial state psi")
     blocks = symmetry_blocks(problem, group=group)
     h = problem.operator.to_csr()
     a_csr = {n: problem.observable_operator(n).to_csr() for n in problem.observables}
-    es, diags = [], {n: [] for n in a_csr}
+    if psi is not None:
+        psi = _initial(problem, psi)
+    es, spins, pw, diags = [], [], [], {n: [] for n in a_csr}
+    s2 = spin_squared_csr(problem) if resolve_total_spin else None
     for blk in blocks:
         if blk.dim > max_dim:
             raise DenseLimitError(f"block {blk.label} has dimension {blk.dim:,} > max_dim = {max_dim:,}")
-        e, v = scipy.linalg.eigh(blk.hamiltonian(h), check_finite=False)
+        if resolve_total_spin:
+            res = spin_resolve(blk.hamiltonian(h), _s2_block(problem, blk, s2))
+            e, v = res.energies, res.vectors
+            spins.append(res.spins)
+        else:
+            e, v = scipy.linalg.eigh(blk.hamiltonian(h), check_finite=False)
         es.append(e)
+        if resolve_total_spin:
+            pw.append(np.abs(v.conj().T @ (blk.q.conj().T @ psi)) ** 2)
         for n, a in a_csr.items():
             ab = (blk.q.conj().T @ (a @ blk.q)).toarray()
             diags[n].append(np.real(np.einsum("im,im->m", v.conj(), ab @ v)))
@@ -790,23 +960,46 @@ def exact_thermal_values(problem, energy: float, *, width: float | None = None, 
     order = np.argsort(e)
     e = e[order]
     dm = {n: np.concatenate(d)[order] for n, d in diags.items()}
-
-    def mean_e(beta):
-        w = np.exp(-beta * (e - e[0] if beta >= 0 else e - e[-1]))
-        return float(np.dot(w, e) / w.sum())
-
     if not (e[0] < energy < e[-1]):
         raise ValueError(f"energy {energy} outside the spectrum [{e[0]}, {e[-1]}]")
-    lo, hi = -1.0, 1.0
-    while mean_e(hi) > energy:
-        hi *= 2.0
-    while mean_e(lo) < energy:
-        lo *= 2.0
-    beta = float(scipy.optimize.brentq(lambda b: mean_e(b) - energy, lo, hi, xtol=1e-14))
-    w = np.exp(-beta * (e - e[0] if beta >= 0 else e - e[-1]))
+    beta = _solve_beta_exact(e, energy)
+    w = _canonical_weights(e, beta)
     can = {n: float(np.dot(w, d) / w.sum()) for n, d in dm.items()}
     if width is None:
         width = 0.02 * (e[-1] - e[0])
     wm = np.exp(-((e - energy) ** 2) / (2.0 * width**2))
     mc = {n: float(np.dot(wm, d) / wm.sum()) for n, d in dm.items()}
-    return ExactThermal(float(energy), beta, can, mc, float(width), len(blocks), e)
+    if not resolve_total_spin:
+        return ExactThermal(float(energy), beta, can, mc, float(width), len(blocks), e,
+                            canonical_mixed=dict(can), microcanonical_mixed=dict(mc))
+    sp_all = np.concatenate(spins)[order]
+    p_all = np.concatenate(pw)[order]
+    can_s = {n: 0.0 for n in dm}
+    mc_s = {n: 0.0 for n in dm}
+    weights, energies_s, betas = {}, {}, {}
+    for s_val in np.unique(sp_all):
+        sel = sp_all == s_val
+        ws = float(p_all[sel].sum())
+        if ws <= 1e-12:
+            continue
+        es_ = e[sel]
+        e_s = float(np.dot(p_all[sel], es_) / ws)
+        b_s = _solve_beta_exact(es_, e_s) if es_.size > 1 else float("inf")
+        wc = _canonical_weights(es_, b_s)
+        wmc = np.exp(-((es_ - e_s) ** 2) / (2.0 * width**2))
+        if not wmc.sum() > 0:
+            wmc = wc
+        for n, d in dm.items():
+            can_s[n] += ws * float(np.dot(wc, d[sel]) / wc.sum())
+            mc_s[n] += ws * float(np.dot(wmc, d[sel]) / wmc.sum())
+        weights[float(s_val)] = ws
+        energies_s[float(s_val)] = e_s
+        betas[float(s_val)] = b_s
+    tot = sum(weights.values())
+    can_s = {n: v / tot for n, v in can_s.items()}
+    mc_s = {n: v / tot for n, v in mc_s.items()}
+    ens = ("canonical and microcanonical ensembles resolved in the conserved total spin S: one ensemble per S at "
+           "the state's energy in S, weighted by the state's weight in S")
+    return ExactThermal(float(energy), beta, can_s, mc_s, float(width), len(blocks), e, ensemble=ens,
+                        canonical_mixed=can, microcanonical_mixed=mc, spin_weights=weights,
+                        spin_energies=energies_s, spin_betas=betas)

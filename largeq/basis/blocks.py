@@ -33,6 +33,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.sparse as sp
 
+from largeq.model import symmetry as msym
 
 __all__ = [
     "SymmetryGroup",
@@ -43,25 +44,17 @@ __all__ = [
     "block_labels",
     "symmetry_blocks",
     "state_subspace",
+    "basis_group",
+    "block_dimension",
+    "fixed_points",
+    "StateBlock",
+    "state_blocks",
 ]
 
 #: Relative tolerance of the check that a permutation commutes with H.
 COMMUTE_TOL = 1e-10
 #: |<psi|g psi>| must be this close to 1 for g to count as a symmetry of the state.
 STATE_TOL = 1e-9
-
-
-def _shift_bits(b: np.ndarray, L: int) -> np.ndarray:
-    """Translate by one site: bit j -> bit j + 1 (mod L)."""
-    full = (1 << L) - 1
-    return ((b << 1) | (b >> (L - 1))) & full
-
-
-def _reverse_bits(b: np.ndarray, L: int) -> np.ndarray:
-    out = np.zeros_like(b)
-    for j in range(L):
-        out |= ((b >> j) & 1) << (L - 1 - j)
-    return out
 
 
 def _perm_matrix(perm: np.ndarray) -> sp.csr_matrix:
@@ -78,18 +71,21 @@ class SymmetryGroup:
     ----------
     n_sites : int
     generators : dict name -> ndarray of int64
-        ``perm[i]`` = index of g(b_i) for each resolved generator ('translation', 'reflection',
-        'spin_flip'); only those that map the basis onto itself and commute with H.
+        ``perm[i]`` = index of g(b_i) for each generator: 'translation', 'reflection', 'spin_flip' when
+        those are symmetries by themselves, else the product that is (e.g. 'R F').
     skipped : dict name -> str
-        Generators not used and why.
-    elements : list of (tuple (j, r, z), ndarray)
-        Every group element T^j R^r Z^z with its permutation (identity included).
+        Standard generators not in the group and why.
+    elements : list of (tuple (j, r, f), ndarray)
+        Every group element T^j R^r F^f with its permutation (identity first).
+    abstract : largeq.model.symmetry.SymmetryGroup
+        The group description the permutations realise.
     """
 
     n_sites: int
     generators: dict
     skipped: dict
     elements: list = field(repr=False)
+    abstract: msym.SymmetryGroup = field(repr=False, default=None)
 
     @property
     def order(self) -> int:
@@ -100,20 +96,26 @@ class SymmetryGroup:
         return f"resolved: {used}" + "".join(f"; not {k} ({v})" for k, v in self.skipped.items())
 
 
+def basis_group(problem) -> msym.SymmetryGroup:
+    """The symmetry group of H (``problem.group``) restricted to the elements
+    that map ``problem.basis`` onto itself (spin flip changes n_up unless n_up = L/2)."""
+    grp = getattr(problem, "group", None)
+    if grp is None:
+        grp = msym.symmetry_group_of(problem.hamiltonian, problem.scenario.chain.periodic)
+    basis = problem.basis
+    L = basis.n_sites
+    if basis.up_spins is not None and 2 * basis.up_spins != L:
+        return grp.restrict(lambda g: g[2] == 0,
+                            {"spin_flip": f"sector n_up = {basis.up_spins} is not n_up = L/2"} if any(g[2] for g in grp.elements) else {})
+    return grp
+
+
 def symmetry_group(problem, *, h_csr=None, check: bool = True) -> SymmetryGroup:
-    """Translation, reflection and spin flip of ``problem`` as permutations of its basis states.
+    """Every element T^j R^r F^f that commutes with H, as permutations of the problem's basis states.
 
-    Candidates come from ``problem.symmetries``; each is verified numerically: it must map the basis
-    onto itself and satisfy ||g H g^T - H||_max <= COMMUTE_TOL * ||H||_max (skipped with a reason
-    otherwise).
-
-    Parameters
-    ----------
-    problem : largeq.operators.problem.Problem
-    h_csr : scipy sparse matrix, optional
-        H on the basis (built from ``problem.operator.to_csr()`` when not given).
-    check : bool
-        Verify commutation with H (default True).
+    Commutation is decided exactly on the Pauli strings (``largeq.model.symmetry``), products included;
+    ``check`` additionally verifies ||g H g^T - H||_max <= COMMUTE_TOL * ||H||_max on the basis matrix
+    (``h_csr`` or built) for each generator.
 
     Returns
     -------
@@ -121,62 +123,43 @@ def symmetry_group(problem, *, h_csr=None, check: bool = True) -> SymmetryGroup:
     """
     basis = problem.basis
     L = basis.n_sites
+    grp = basis_group(problem)
     states = basis.states()
-    flags = problem.symmetries
-    cand = {}
-    skipped = {}
-    if flags.get("translation"):
-        cand["translation"] = _shift_bits(states, L)
-    else:
-        skipped["translation"] = "open chain or H not translation invariant"
-    if flags.get("reflection"):
-        cand["reflection"] = _reverse_bits(states, L)
-    else:
-        skipped["reflection"] = "H not reflection symmetric"
-    if flags.get("spin_flip"):
-        if basis.up_spins is None or 2 * basis.up_spins == L:
-            cand["spin_flip"] = states ^ ((1 << L) - 1)
+    perms = {}
+    for g in grp.elements:
+        p = basis.index(msym.apply_bits(g, states, L))
+        if np.any(p < 0):
+            raise RuntimeError(f"symmetry {msym.element_name(g)} does not map the basis onto itself (bug)")
+        perms[g] = p.astype(np.int64)
+    st = grp.standard()
+    gens, skipped = {}, {}
+    names = {(1 % L, 0, 0): "translation", (0, 1, 0): "reflection", (0, 0, 1): "spin_flip"}
+    for g, name in names.items():
+        if st[name]:
+            gens[name] = perms[g]
+        elif name in grp.excluded:
+            skipped[name] = grp.excluded[name]
+        elif name == "translation" and not problem.scenario.chain.periodic:
+            skipped[name] = "open chain"
         else:
-            skipped["spin_flip"] = f"sector n_up = {basis.up_spins} is not n_up = L/2"
-    else:
-        skipped["spin_flip"] = "H not spin-flip symmetric"
-    gens = {}
-    h = None
-    for name, image in cand.items():
-        perm = basis.index(image)
-        if np.any(perm < 0):
-            skipped[name] = "does not map the basis onto itself"
-            continue
-        if check:
-            if h is None:
-                h = (h_csr if h_csr is not None else problem.operator.to_csr()).tocsr()
-                hmax = float(abs(h).max()) if h.nnz else 1.0
+            skipped[name] = "does not commute with H"
+    have = msym.closure([g for g, name in names.items() if st[name]], L)
+    while len(have) < grp.order:  # products that are symmetries although their factors are not
+        best = max((g for g in grp.elements if g not in have),
+                   key=lambda g: (len(msym.closure(list(have) + [g], L)), -g[0], g))
+        gens[msym.element_name(best)] = perms[best]
+        have = msym.closure(list(have) + [best], L)
+    if check and gens:
+        h = (h_csr if h_csr is not None else problem.operator.to_csr()).tocsr()
+        hmax = float(abs(h).max()) if h.nnz else 1.0
+        for name, perm in gens.items():
             pm = _perm_matrix(perm)
-            diff = (pm @ h @ pm.T - h)
+            diff = pm @ h @ pm.T - h
             err = float(abs(diff).max()) if diff.nnz else 0.0
             if err > COMMUTE_TOL * max(hmax, 1e-300):
-                skipped[name] = f"does not commute with H (max deviation {err:.2e})"
-                continue
-        gens[name] = perm.astype(np.int64)
-    ident = np.arange(basis.dim, dtype=np.int64)
-    n_t = L if "translation" in gens else 1
-    n_r = 2 if "reflection" in gens else 1
-    n_z = 2 if "spin_flip" in gens else 1
-    elements = []
-    tj = ident
-    for j in range(n_t):
-        for r in range(n_r):
-            for z in range(n_z):
-                p = ident
-                if z:
-                    p = gens["spin_flip"][p]
-                if r:
-                    p = gens["reflection"][p]
-                p = tj[p]
-                elements.append(((j, r, z), p))
-        if n_t > 1:
-            tj = gens["translation"][tj]
-    return SymmetryGroup(L, gens, skipped, elements)
+                raise RuntimeError(f"{name} passed the Pauli-string check but deviates by {err:.2e} on the basis (bug)")
+    elements = [(g, perms[g]) for g in grp.elements]
+    return SymmetryGroup(L, gens, skipped, elements, grp)
 
 
 def subspace_basis(perms, chars, dim: int, *, tol: float = 1e-10) -> sp.csr_matrix:
@@ -239,47 +222,45 @@ class Block:
         return 0.5 * (m + m.conj().T)
 
 
-def block_labels(group: SymmetryGroup) -> list[dict]:
-    """All 1-d representations used as blocks: momentum k, reflection parity (k = 0, L/2), flip parity."""
-    L = group.n_sites
-    ks = list(range(L)) if "translation" in group.generators else [None]
-    out = []
-    for k in ks:
-        ref_ok = "reflection" in group.generators and (k is None or k == 0 or 2 * k == L)
-        for p in ((+1, -1) if ref_ok else (None,)):
-            for z in ((+1, -1) if "spin_flip" in group.generators else (None,)):
-                out.append({"k": k, "reflection": p, "spin_flip": z})
-    return out
+def block_labels(group: SymmetryGroup) -> list[tuple[dict, str]]:
+    """1-d characters whose blocks span the basis: [(chi {element: value}, label)] (see
+    ``largeq.model.symmetry.block_characters``: momentum and flip-type characters of the rotation part,
+    with a reflection-type parity where the character allows one)."""
+    if group.abstract is None:
+        raise ValueError("the group has no abstract description")
+    return msym.block_characters(group.abstract)
 
 
-def _label(qn: dict, L: int) -> str:
-    parts = []
-    if qn["k"] is not None:
-        parts.append(f"k = 2pi*{qn['k']}/{L}")
-    if qn["reflection"] is not None:
-        parts.append(f"R = {qn['reflection']:+d}")
-    if qn["spin_flip"] is not None:
-        parts.append(f"Z = {qn['spin_flip']:+d}")
-    return ", ".join(parts) or "no symmetry resolved"
-
-
-def _block_elements(group: SymmetryGroup, qn: dict):
-    """Elements and characters of the subgroup that the block's quantum numbers fix."""
-    L = group.n_sites
+def _block_elements(group: SymmetryGroup, chi: dict):
+    """Permutations and character values of the elements the block's character is defined on."""
     perms, chars = [], []
-    for (j, r, z), p in group.elements:
-        if r and qn["reflection"] is None:
+    for key, p in group.elements:
+        if key in chi:
+            perms.append(p)
+            chars.append(chi[key])
+    return perms, chars
+
+
+def _trivial(group: SymmetryGroup) -> dict:
+    return {key: 1.0 + 0j for key, _ in group.elements}
+
+
+def _legacy_character(group: SymmetryGroup, qn: dict) -> dict:
+    """{'k': m, 'reflection': +-1 or None, 'spin_flip': +-1 or None} -> character (standard groups)."""
+    L = group.n_sites
+    out = {}
+    for (j, r, f), _ in group.elements:
+        if r and qn.get("reflection") is None:
             continue
         c = 1.0 + 0j
-        if qn["k"] is not None:
+        if qn.get("k") is not None:
             c *= np.exp(2j * np.pi * qn["k"] * j / L)
         if r:
             c *= qn["reflection"]
-        if z:
-            c *= qn["spin_flip"]
-        perms.append(p)
-        chars.append(c)
-    return perms, chars
+        if f:
+            c *= qn.get("spin_flip") or 1
+        out[(j, r, f)] = c
+    return out
 
 
 def symmetry_blocks(problem, *, group: SymmetryGroup | None = None, which: str | dict = "all") -> list[Block]:
@@ -291,31 +272,46 @@ def symmetry_blocks(problem, *, group: SymmetryGroup | None = None, which: str |
     group : SymmetryGroup, optional
         From ``symmetry_group`` (built if not given).
     which : 'all', 'trivial', or dict
-        'all': every block (their dimensions add up to the basis dimension); 'trivial': k = 0 and all
-        parities +1; a dict ``{'k': ..., 'reflection': ..., 'spin_flip': ...}`` picks one block.
+        'all': every block (their dimensions add up to the basis dimension); 'trivial': the character
+        equal to 1 on the whole group (k = 0 and all parities +1); a dict picks one block: a character
+        ``{element: value}`` or, for the standard generators, ``{'k': ..., 'reflection': ..., 'spin_flip': ...}``.
 
     Returns
     -------
     list of Block
     """
     group = group or symmetry_group(problem)
-    labels = block_labels(group)
-    if which == "trivial":
-        labels = [{"k": 0 if "translation" in group.generators else None,
-                   "reflection": +1 if "reflection" in group.generators else None,
-                   "spin_flip": +1 if "spin_flip" in group.generators else None}]
+    if which == "all":
+        labels = block_labels(group)
+    elif which == "trivial":
+        labels = [(_trivial(group), "trivial character (k = 0, all parities +1)")]
     elif isinstance(which, dict):
-        labels = [dict(which)]
-    elif which != "all":
-        raise ValueError(f"which must be 'all', 'trivial' or a dict of quantum numbers, got {which!r}")
+        chi = _legacy_character(group, which) if set(which) <= {"k", "reflection", "spin_flip"} else dict(which)
+        labels = [(chi, ", ".join(f"{msym.element_name(k)}: {complex(v):.3g}" for k, v in sorted(chi.items())
+                                  if k != msym.IDENTITY))]
+    else:
+        raise ValueError(f"which must be 'all', 'trivial' or a dict, got {which!r}")
     dim = problem.basis.dim
     out = []
-    for qn in labels:
-        perms, chars = _block_elements(group, qn)
+    for chi, label in labels:
+        perms, chars = _block_elements(group, chi)
         q = subspace_basis(perms, chars, dim)
         if q.shape[1]:
-            out.append(Block(_label(qn, group.n_sites), qn, q))
+            out.append(Block(label or "no symmetry resolved", chi, q))
     return out
+
+
+def block_dimension(group: SymmetryGroup, chi: dict, fixed: dict | None = None) -> int:
+    """Tr P_chi = (1/|G_chi|) sum_g conj(chi(g)) #{fixed points of g}, without building the block."""
+    if fixed is None:
+        fixed = fixed_points(group)
+    tot = sum(np.conj(v) * fixed[k] for k, v in chi.items())
+    return int(round(float(np.real(tot)) / len(chi)))
+
+
+def fixed_points(group: SymmetryGroup) -> dict:
+    """{element: number of basis states it fixes}."""
+    return {key: int(np.count_nonzero(p == np.arange(p.size))) for key, p in group.elements}
 
 
 @dataclass(frozen=True, eq=False)
@@ -371,3 +367,57 @@ def state_subspace(problem, psi: np.ndarray, *, group: SymmetryGroup | None = No
     desc = (f"subspace of the initial state: {len(perms)} of {group.order} symmetry operations leave it "
             f"invariant up to a phase ({group.describe()}); dimension {q.shape[1]:,} of {problem.basis.dim:,}")
     return StateSubspace(q, len(perms), group.order, desc, small)
+
+
+@dataclass(frozen=True, eq=False)
+class StateBlock:
+    """One block (1-d character chi) that the initial state touches: P_chi psi != 0.
+
+    Attributes
+    ----------
+    label : str
+    character : dict element -> complex
+    dim : int
+        Tr P_chi (known before the block is built).
+    weight : float
+        ||P_chi psi||^2 (the weights of all blocks sum to 1).
+    """
+
+    label: str
+    character: dict = field(repr=False)
+    dim: int = 0
+    weight: float = 0.0
+
+    def build(self, group: SymmetryGroup, psi: np.ndarray) -> tuple[sp.csr_matrix, np.ndarray]:
+        """(Q, Q^dagger psi): orthonormal basis of the block and the state's component in it."""
+        perms, chars = _block_elements(group, self.character)
+        q = subspace_basis(perms, chars, psi.size)
+        return q, q.conj().T @ psi
+
+
+def state_blocks(problem, psi: np.ndarray, *, group: SymmetryGroup | None = None,
+                 tol: float = 1e-12) -> list[StateBlock]:
+    """The blocks of ``block_labels(group)`` that hold part of psi, with dimensions and weights.
+
+    w_chi = <psi|P_chi|psi> = (1/|G_chi|) sum_g conj(chi(g)) <psi|g psi>: one overlap per group element,
+    then every block's weight and dimension (from fixed points) without building any block.
+    Blocks with weight <= tol (relative to ||psi||^2) are left out; the weights are normalised by ||psi||^2.
+    """
+    group = group or symmetry_group(problem)
+    psi = np.asarray(psi)
+    n2 = float(np.vdot(psi, psi).real)
+    over = {}
+    for key, p in group.elements:
+        gpsi = np.empty_like(psi)
+        gpsi[p] = psi
+        over[key] = complex(np.vdot(psi, gpsi)) / n2
+    fixed = fixed_points(group)
+    out = []
+    for chi, label in block_labels(group):
+        w = float(np.real(sum(np.conj(v) * over[k] for k, v in chi.items())) / len(chi))
+        if w > tol:
+            out.append(StateBlock(label or "no symmetry resolved", chi, block_dimension(group, chi, fixed), w))
+    total = sum(b.weight for b in out)
+    if abs(total - 1.0) > 1e-8:
+        raise RuntimeError(f"block weights sum to {total:.12g}, not 1 (bug)")
+    return out

@@ -98,24 +98,27 @@ def _materialize(matrix) -> np.ndarray:
     return np.array(matrix)
 
 
-def _check_dim(dim: int, name: str, complex_valued: bool = True) -> None:
-    if dim > MAX_DENSE_DIM:
+def _check_dim(dim: int, name: str, complex_valued: bool = True, limit: int | None = None) -> None:
+    limit = MAX_DENSE_DIM if limit is None else int(limit)
+    if dim > limit:
         gib = dense_memory_bytes(dim, complex_valued) / 2**30
         raise ValueError(
-            f"{name} has dimension {dim}, above the dense limit MAX_DENSE_DIM = {MAX_DENSE_DIM}; "
+            f"{name} has dimension {dim}, above the dense limit {limit}; "
             f"full diagonalization would need about {gib:.1f} GiB and O(D^3) time. "
             "Use a smaller sector or the Chebyshev / KPM engines."
         )
 
 
-def diagonalize(matrix) -> Spectrum:
+def diagonalize(matrix, max_dim: int | None = None) -> Spectrum:
     """Dense eigen-decomposition of one Hermitian sector, H = V diag(E) V^dagger (energy units).
 
     Parameters
     ----------
     matrix : ndarray, scipy sparse matrix or LinearOperator, shape (D, D)
         Hermitian sector Hamiltonian; a LinearOperator is materialised column block by block.
-        D must not exceed ``MAX_DENSE_DIM``.
+        D must not exceed ``max_dim`` (default ``MAX_DENSE_DIM``).
+    max_dim : int, optional
+        Raise the dense limit (the caller has checked memory).
 
     Returns
     -------
@@ -131,7 +134,7 @@ def diagonalize(matrix) -> Spectrum:
     if shape is None or len(shape) != 2 or shape[0] != shape[1]:
         raise ValueError(f"matrix must be square 2-d, got shape {shape}")
     dtype = np.dtype(getattr(matrix, "dtype", np.complex128) or np.complex128)
-    _check_dim(int(shape[0]), "matrix", np.iscomplexobj(np.empty(0, dtype)))
+    _check_dim(int(shape[0]), "matrix", np.iscomplexobj(np.empty(0, dtype)), max_dim)
     h = _materialize(matrix)
     if not np.all(np.isfinite(h)):
         raise ValueError("matrix contains NaN or infinite entries")

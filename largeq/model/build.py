@@ -12,6 +12,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from largeq.model import symmetry as msym
 from largeq.model.pauli import PauliSum, empty
 from largeq.scenario.spec import Scenario, _range_pairs
 
@@ -298,24 +299,8 @@ def initial_state(scenario: Scenario) -> ProductState:
 
 
 # ---------------------------------------------------------------------------- symmetries
-def _term_dict(ps: PauliSum) -> dict[tuple[int, int], complex]:
-    s = ps.simplify()
-    return dict(zip(zip(s.x_mask.tolist(), s.z_mask.tolist()), s.coeff.tolist()))
-
-
-def _same(a: dict, b: dict, tol: float = 1e-12) -> bool:
-    if a.keys() != b.keys():
-        return False
-    return all(abs(a[k] - b[k]) <= tol for k in a)
-
-
-def _map_masks(ps: PauliSum, f) -> PauliSum:
-    return PauliSum(ps.n_sites, np.array([f(int(m)) for m in ps.x_mask], dtype=np.int64),
-                    np.array([f(int(m)) for m in ps.z_mask], dtype=np.int64), ps.coeff)
-
-
-def symmetries(scenario: Scenario, H: PauliSum | None = None) -> dict[str, bool]:
-    """Symmetry facts of H that the basis chooser needs (each checked exactly on the Pauli sum).
+def symmetries(scenario: Scenario, H: PauliSum | None = None) -> dict:
+    """Symmetry facts of H (each checked exactly on the Pauli sum, ``largeq.model.symmetry``).
 
     Returns
     -------
@@ -325,29 +310,25 @@ def symmetries(scenario: Scenario, H: PauliSum | None = None) -> dict[str, bool]
         ``hermitian``;
         ``translation``: H invariant under j -> j + 1 mod L (only possible on a ring);
         ``spin_flip``: H invariant under flipping all spins (prod_j sigma^x_j);
-        ``reflection``: H invariant under j -> L - 1 - j.
+        ``reflection``: H invariant under j -> L - 1 - j;
+        ``group``: names of generators of the whole symmetry group among T^j R^r F^f, products included
+        (e.g. 'R F' for a staggered field);
+        ``group_order``: its order;
+        ``total_spin``: H commutes with S^2 (SU(2) symmetry).
+        The group itself: ``largeq.model.symmetry.symmetry_group_of(H, periodic)``.
     """
     if H is None:
         H = hamiltonian(scenario)
-    L = scenario.n_sites
-    full = (1 << L) - 1
-    base = _term_dict(H)
-
-    def shift(m):
-        return ((m << 1) | (m >> (L - 1))) & full
-
-    def reverse(m):
-        return int(format(m, f"0{L}b")[::-1], 2)
-
-    translation = scenario.chain.periodic and _same(base, _term_dict(_map_masks(H, shift)))
-    reflection = _same(base, _term_dict(_map_masks(H, reverse)))
-    odd_z = np.array([int(z).bit_count() % 2 == 1 for z in H.z_mask.tolist()], dtype=bool)
-    spin_flip = bool(np.all(np.abs(H.coeff[odd_z]) <= 1e-12)) if len(H) else True
+    grp = msym.symmetry_group_of(H, scenario.chain.periodic)
+    st = grp.standard()
     return {
         "conserves_magnetization": bool(H.conserves_magnetization()),
         "real": bool(H.is_real()),
         "hermitian": bool(H.is_hermitian()),
-        "translation": bool(translation),
-        "spin_flip": spin_flip,
-        "reflection": bool(reflection),
+        "translation": bool(st["translation"]),
+        "spin_flip": bool(st["spin_flip"]),
+        "reflection": bool(st["reflection"]),
+        "group": grp.names(),
+        "group_order": grp.order,
+        "total_spin": bool(msym.conserves_total_spin(H)),
     }

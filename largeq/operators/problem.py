@@ -73,6 +73,13 @@ class Problem:
         sp = self.start.spinors
         return product_state(self.basis, sp[:, 0], sp[:, 1])
 
+    @cached_property
+    def group(self):
+        """The symmetry group of H among T^j R^r F^f (``largeq.model.symmetry``), products included."""
+        from largeq.model.symmetry import symmetry_group_of
+
+        return symmetry_group_of(self.hamiltonian, self.scenario.chain.periodic)
+
     @property
     def n_sites(self) -> int:
         return self.basis.n_sites

@@ -22,6 +22,7 @@ from scipy.sparse.linalg import LinearOperator
 
 from largeq.basis import _sector_kernels as sk
 from largeq.operators.pauli_operator import fused_arguments
+from largeq.model import symmetry as msym
 from largeq.model.pauli import PauliSum
 from largeq.basis.sectors import GroupSpec, SymmetricSector, orbit_representatives, symmetric_sector
 from largeq.operators.vectors import threads_for, vdot
@@ -31,38 +32,12 @@ __all__ = ["SymmetricOperator", "StoredSectorMatrix", "is_invariant", "split_bas
 
 
 # --------------------------------------------------------------------------- invariance
-def _map_masks(ps: PauliSum, f) -> PauliSum:
-    x = np.array([f(int(v)) for v in ps.x_mask.tolist()], np.int64)
-    z = np.array([f(int(v)) for v in ps.z_mask.tolist()], np.int64)
-    return PauliSum(ps.n_sites, x, z, ps.coeff)
-
-
-def _canon(ps: PauliSum) -> dict:
-    s = ps.simplify(1e-13)
-    return {(int(a), int(b)): complex(c) for a, b, c in zip(s.x_mask.tolist(), s.z_mask.tolist(), s.coeff.tolist())}
-
-
-def _same(a: dict, b: dict, tol: float = 1e-12) -> bool:
-    return all(abs(a.get(k, 0) - b.get(k, 0)) <= tol for k in set(a) | set(b))
-
-
 def is_invariant(ps: PauliSum, group: GroupSpec) -> dict[str, bool]:
-    """Whether g A g^dagger = A for each generator of ``group`` (checked exactly on the Pauli sum).
-
-    F = prod_j sigma^x_j maps a string to itself times (-1)^{#Z + #Y}; T and R permute sites.
-    """
-    L = ps.n_sites
-    full = (1 << L) - 1
-    base = _canon(ps)
-    out = {}
-    if group.translation:
-        out["translation"] = _same(base, _canon(_map_masks(ps, lambda m: ((m << 1) | (m >> (L - 1))) & full)))
-    if group.reflection:
-        out["reflection"] = _same(base, _canon(_map_masks(ps, lambda m: int(format(m, f"0{L}b")[::-1], 2))))
-    if group.spin_flip:
-        sign = np.array([-1.0 if int(z).bit_count() % 2 else 1.0 for z in ps.z_mask.tolist()])
-        out["spin_flip"] = _same(base, _canon(PauliSum(L, ps.x_mask, ps.z_mask, ps.coeff * sign)))
-    return out
+    """Whether g A g^dagger = A for each generator of ``group`` (checked exactly on the Pauli sum by
+    ``largeq.model.symmetry.commutes``, the same check that finds the symmetries of H)."""
+    gens = {"translation": (1 % ps.n_sites, 0, 0), "reflection": (0, 1, 0), "spin_flip": (0, 0, 1)}
+    on = {"translation": group.translation, "reflection": group.reflection, "spin_flip": group.spin_flip}
+    return {name: msym.commutes(ps, g) for name, g in gens.items() if on[name]}
 
 
 # --------------------------------------------------------------------------- operator
@@ -316,19 +291,14 @@ def split_basis_state(bits: int, n_sites: int, *, translation: bool = True, refl
 
 
 def _compatible(rep: int, L: int, group: GroupSpec, m, r, f) -> bool:
-    """chi(g) = 1 for every g in the stabiliser of ``rep`` (plain Python: one orbit only)."""
-    full = group.full
-    for p in range(2 if group.reflection else 1):
-        s1 = int(format(rep, f"0{L}b")[::-1], 2) if p else rep
-        for ff in range(2 if group.spin_flip else 1):
-            s2 = s1 ^ full if ff else s1
-            for j in range(L if group.translation else 1):
-                s = ((s2 << j) | (s2 >> (L - j))) & full if j else s2
-                if s == rep:
-                    ch = np.exp(2j * np.pi * m * j / L) if m is not None else 1.0
-                    ch *= (r if p else 1) * (f if ff else 1)
-                    if abs(ch - 1) > 1e-9:
-                        return False
+    """chi(g) = 1 for every g in the stabiliser of ``rep`` (one orbit only)."""
+    for g in group.abstract().elements:
+        j, p, ff = g
+        if int(msym.apply_bits(g, rep, L)) == rep:
+            ch = np.exp(2j * np.pi * m * j / L) if m is not None else 1.0
+            ch *= (r if p else 1) * (f if ff else 1)
+            if abs(ch - 1) > 1e-9:
+                return False
     return True
 
 
@@ -416,31 +386,10 @@ def stabiliser_average(obs: PauliSum, bits: int, group: GroupSpec) -> tuple[Paul
     from A (True: A is *equivalent*, not equal, to the averaged observable -- the output should say so).
     """
     L = group.n_sites
-    full = group.full
-    terms = []
-    count = 0
-
-    def perm_mask(m, j, p):
-        if p:
-            m = int(format(m, f"0{L}b")[::-1], 2)
-        return ((m << j) | (m >> (L - j))) & full if j else m
-
-    for p in range(2 if group.reflection else 1):
-        for f in range(2 if group.spin_flip else 1):
-            for j in range(L if group.translation else 1):
-                s = perm_mask(bits, j, p)
-                if f:
-                    s ^= full
-                if s != bits:
-                    continue
-                count += 1
-                x = np.array([perm_mask(int(v), j, p) for v in obs.x_mask.tolist()], np.int64)
-                z = np.array([perm_mask(int(v), j, p) for v in obs.z_mask.tolist()], np.int64)
-                sign = np.array([-1.0 if (f and int(v).bit_count() % 2) else 1.0 for v in obs.z_mask.tolist()])
-                terms.append(PauliSum(L, x, z, obs.coeff * sign))
+    terms = [msym.map_pauli(obs, g) for g in group.abstract().elements if int(msym.apply_bits(g, bits, L)) == bits]
     avg = terms[0]
     for t in terms[1:]:
         avg = avg + t
-    avg = (avg * (1.0 / count)).simplify()
-    differs = not _same(_canon(avg), _canon(obs))
+    avg = (avg * (1.0 / len(terms))).simplify()
+    differs = not msym.same_operator(avg, obs)
     return avg, differs

@@ -11,18 +11,13 @@ from __future__ import annotations
 import numpy as np
 
 from largeq.analysis.equilibrium_formulas import fluctuation_bound
-from largeq.analysis.equilibration import (DenseLimitError, estimate_deff, exact_equilibration,
+from largeq.analysis.equilibration import (DenseLimitError, estimate_deff, exact_equilibration, exact_plan,
                                            exact_thermal_values, thermal_values)
-from largeq.constants import ESTIMATE_MAX_DIM, MAX_DENSE_DIM
+from largeq.constants import ESTIMATE_MAX_DIM, EXACT_AUTO_MAX_BLOCK, EXACT_THERMAL_MAX_DIM
 
 __all__ = ["MODES", "ESTIMATE_MAX_DIM", "equilibration_report"]
 
 MODES = ("auto", "exact", "estimate", "off")
-#: largest basis dimension for which "auto" runs the exact engine (its thermal values
-#: diagonalize every symmetry block of the basis: seconds at L = 16, minutes at L = 20)
-EXACT_AUTO_MAX_DIM = MAX_DENSE_DIM
-#: largest basis dimension for which "auto" runs the KPM estimate and TPQ thermal values
-#: (about a minute on 2 cores at L = 20 in a magnetization sector)
 
 
 def _finite(x):
@@ -44,15 +39,21 @@ def equilibration_report(problem, times, survival, analyses, *, mode: str = "aut
         out["summary"]["note"] = "not requested (--equilibration off)"
         return out
     exact = None
-    if mode == "exact" or (mode == "auto" and dim <= EXACT_AUTO_MAX_DIM):
-        try:
-            exact = exact_equilibration(problem)
-        except DenseLimitError as exc:
-            if mode == "exact":
-                raise
-            out["summary"]["exact_note"] = str(exc)
+    if mode in ("exact", "auto"):
+        plan = exact_plan(problem)
+        if mode == "exact" or plan.largest <= EXACT_AUTO_MAX_BLOCK:
+            try:
+                exact = exact_equilibration(problem, plan=plan)
+            except DenseLimitError as exc:
+                if mode == "exact":
+                    raise
+                out["summary"]["exact_note"] = str(exc)
+        else:
+            out["summary"]["exact_note"] = (f"largest symmetry block touched by the initial state has dimension "
+                                            f"{plan.largest:,} > {EXACT_AUTO_MAX_BLOCK:,} (automatic limit); "
+                                            "--equilibration exact runs it anyway")
     if exact is not None:
-        _from_exact(problem, exact, analyses, energy, out)
+        _from_exact(problem, exact, analyses, energy, out, rng)
         return out
     if mode == "estimate" or dim <= ESTIMATE_MAX_DIM:
         _from_estimate(problem, times, survival, analyses, energy, rng, out)
@@ -63,18 +64,27 @@ def equilibration_report(problem, times, survival, analyses, *, mode: str = "aut
     return out
 
 
-def _from_exact(problem, ex, analyses, energy, out) -> None:
+def _from_exact(problem, ex, analyses, energy, out, rng) -> None:
     s = out["summary"]
     s.update(method="exact diagonalization", d_eff=ex.d_eff, d_eff_range=[ex.d_eff, ex.d_eff],
              how=f"dense diagonalization of {ex.subspace} (dimension {ex.dim:,}); degenerate levels grouped",
              gap_degeneracy_N0=ex.gap_degeneracy, details=ex.summary())
     s["details"].pop("observables", None)
-    try:
-        th = exact_thermal_values(problem, energy)
-        s["thermal"] = {"method": "exact (all symmetry blocks of the basis)", "beta": th.beta, "width": th.width}
-    except DenseLimitError as exc:
-        th = None
-        s["thermal"] = {"method": "skipped", "note": str(exc)}
+    th = None
+    if problem.basis.dim <= EXACT_THERMAL_MAX_DIM:
+        try:
+            th = exact_thermal_values(problem, energy, psi=problem.initial_vector()[0])
+            s["thermal"] = {"method": "exact (all symmetry blocks of the basis)", "beta": th.beta, "width": th.width,
+                            "ensemble": th.ensemble}
+        except DenseLimitError as exc:
+            s["thermal"] = {"method": "skipped", "note": str(exc)}
+    elif problem.basis.dim <= ESTIMATE_MAX_DIM:
+        th = thermal_values(problem, energy, n_vectors=8, rng=rng)
+        s["thermal"] = {"method": "thermal pure quantum states + KPM-filtered random states", "beta": th.beta,
+                        "beta_err": th.beta_err, "width": th.width, "vectors": th.n_vectors,
+                        "left_out": th.left_out}
+    else:
+        s["thermal"] = {"method": "skipped", "note": f"basis dimension {problem.basis.dim:,} beyond {ESTIMATE_MAX_DIM:,}"}
     rows = out["rows"]
     rows.append(("effective dimension d_eff", f"{ex.d_eff:.5g}", s["how"]))
     rows.append(("largest gap degeneracy N(0)", str(ex.gap_degeneracy), ""))
@@ -96,7 +106,7 @@ def _from_exact(problem, ex, analyses, energy, out) -> None:
                      "bound holds" if o.holds else "BOUND VIOLATED"))
         if th is not None:
             rows.append((f"{name}: canonical / microcanonical", f"{th.canonical[name]:.5g} / {th.microcanonical[name]:.5g}",
-                         f"β = {th.beta:.4g}"))
+                         f"β = {th.beta:.4g}; " + _ensemble_note(th)))
 
 
 def _from_estimate(problem, times, survival, analyses, energy, rng, out) -> None:
@@ -107,7 +117,8 @@ def _from_estimate(problem, times, survival, analyses, energy, rng, out) -> None
              reliable=bool(est.reliable), warnings=list(est.warnings), details=est.summary())
     th = thermal_values(problem, energy, n_vectors=8, rng=rng)
     s["thermal"] = {"method": "thermal pure quantum states + KPM-filtered random states",
-                    "beta": th.beta, "beta_err": th.beta_err, "width": th.width, "vectors": th.n_vectors}
+                    "beta": th.beta, "beta_err": th.beta_err, "width": th.width, "vectors": th.n_vectors,
+                    "left_out": th.left_out}
     rows = out["rows"]
     rows.append(("effective dimension d_eff (estimate)", f"{est.d_eff:.4g} [{est.d_eff_low:.3g}, {est.d_eff_high:.3g}]",
                  "assumes chaotic eigenvectors; " + ("; ".join(est.warnings) if est.warnings else "no warning")))
@@ -125,4 +136,14 @@ def _from_estimate(problem, times, survival, analyses, energy, rng, out) -> None
         rows.append((f"{name}: σ² (window) / bound", f"{a.variance:.3g} / {b.value:.3g}", "bound from the estimated d_eff"))
         rows.append((f"{name}: window mean vs canonical vs microcanonical",
                      f"{a.equilibrium:.4g} vs {th.canonical[name]:.4g} ± {th.canonical_err[name]:.2g} vs "
-                     f"{th.microcanonical.get(name, float('nan')):.4g}", f"β = {th.beta:.4g} ± {th.beta_err:.2g}"))
+                     f"{th.microcanonical.get(name, float('nan')):.4g}",
+                     f"β = {th.beta:.4g} ± {th.beta_err:.2g}; " + _ensemble_note(th)))
+
+
+def _ensemble_note(th) -> str:
+    """What the thermal ensemble resolves and which conserved quantity it leaves out."""
+    left = getattr(th, "left_out", None)
+    if left:
+        return "ensemble leaves out: " + left
+    ens = getattr(th, "ensemble", None)
+    return ens or ""
