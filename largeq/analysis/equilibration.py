@@ -355,6 +355,7 @@ class SubspaceDensity:
     n_moments: int
     n_vectors: int
     resolution_center: float
+    samples: np.ndarray | None = field(default=None, repr=False)
 
 
 def _projected_dos(op, elements, chars, trace, n_moments, n_vectors, rng, bounds, n_points, eps=0.01):
@@ -387,7 +388,26 @@ def _projected_dos(op, elements, chars, trace, n_moments, n_vectors, rng, bounds
         energies=a * x + b, density=rho_i.mean(axis=0) / a, density_err=err / a, cumulative=cum_i.mean(axis=0),
         cumulative_err=cerr, trace=float(trace), moments=moments.mean(axis=0), kernel_factors=g, scale=a,
         shift=b, n_moments=n_moments, n_vectors=R, resolution_center=float(np.pi * a / n_moments),
+        samples=rho_i / a,
     )
+
+
+def _jackknife_log_err(energies, ldos, dos, eta, resolution) -> float:
+    """Jackknife standard error of ln d_eff over the DOS random vectors (NaN with fewer than 2 vectors).
+
+    sigma^2 = (R - 1)/R sum_i (ln d_(i) - mean)^2, d_(i) the estimate with vector i left out (the usual
+    delete-one jackknife; B. Efron, "The jackknife, the bootstrap and other resampling plans", SIAM 1982).
+    """
+    if dos.samples is None or dos.samples.shape[0] < 2:
+        return float("nan")
+    R = dos.samples.shape[0]
+    total = dos.samples.sum(axis=0)
+    vals = []
+    for i in range(R):
+        rho = (total - dos.samples[i]) / (R - 1)
+        vals.append(np.log(deff_from_densities(energies, ldos, rho, eta=eta, resolution=resolution).d_eff))
+    vals = np.asarray(vals)
+    return float(np.sqrt((R - 1) / R * np.sum((vals - vals.mean()) ** 2)))
 
 
 def _paired_fraction(group, els, chars, keys, trace) -> float:
@@ -450,8 +470,8 @@ class DeffResult:
     d_eff : float
         1 / (eta int rho_psi^2 / rho dE).
     d_eff_low, d_eff_high : float
-        Range from the DOS error bars (stochastic trace); it does not include the error of the
-        random-matrix assumption itself.
+        Range from the DOS error bars (stochastic trace, all shifted together: a generous range); it does
+        not include the error of the random-matrix assumption itself.
     eta : float
         3 real amplitudes, 2 complex, 3 - 4w(1 - w) in between (``amplitude_eta``), plus ``paired_fraction``.
     paired_fraction : float
@@ -468,6 +488,8 @@ class DeffResult:
         plateau disagreeing with the estimate by more than both errors.
     reasons : tuple of str
         Every reason the estimate is not reliable (calibration missing or failed, plus the warnings).
+    log_err : float
+        Jackknife standard error of ln d_eff over the DOS random vectors (NaN with one vector).
     calibration : DeffCalibration or None
         The calibrated estimate (``calibrated``, ``calibrated_low``, ``calibrated_high`` repeat its numbers;
         NaN without calibration).
@@ -509,6 +531,7 @@ class DeffResult:
     seconds: float = 0.0
     reasons: tuple = ()
     calibration: DeffCalibration | None = field(default=None, repr=False)
+    log_err: float = float("nan")
 
     @property
     def calibrated(self) -> float:
@@ -637,6 +660,7 @@ def estimate_deff(problem, *, n_moments: int = 256, n_vectors: int = 20, rng: np
     res = float(np.interp(ldos.mean_exact, ldos.energies, ldos.resolution))
     est = deff_from_densities(dos.energies, ldos.density, dos.density, eta=eta,
                               dos_err=None if n_vectors < 2 else dos.density_err, resolution=res)
+    log_err = _jackknife_log_err(dos.energies, ldos.density, dos, eta, res)
     if est.narrow:
         warnings.append(f"narrow energy distribution: LDOS width {est.ldos_width:.3g} < 3 x KPM resolution "
                         f"{res:.3g}; the estimate is unreliable (more moments help only if the LDOS is smooth)")
@@ -654,7 +678,8 @@ def estimate_deff(problem, *, n_moments: int = 256, n_vectors: int = 20, rng: np
             calibration = calibration_points(problem.scenario, problem.n_sites, n_moments=n_moments,
                                              n_vectors=n_vectors, seed=int(rng.integers(2**62)),
                                              max_dim=calibration_max_dim)
-        cal = calibrate_deff(list(calibration), problem.n_sites, est.d_eff, est.d_eff_low, est.d_eff_high)
+        cal = calibrate_deff(list(calibration), problem.n_sites, est.d_eff, est.d_eff_low, est.d_eff_high,
+                             raw_log_err=log_err)
     pl = (None, None, None, None)
     if survival is not None:
         times, values = (np.asarray(x, dtype=float) for x in survival)
@@ -680,7 +705,7 @@ def estimate_deff(problem, *, n_moments: int = 256, n_vectors: int = 20, rng: np
         reliable=bool(reliable), warnings=tuple(warnings), assumption=est.assumption, estimate=est, ldos=ldos,
         dos=dos, subspace_dim=trace, subspace=sub_desc, plateau_d_eff=pl[0], plateau_low=pl[1],
         plateau_high=pl[2], plateau_window=pl[3], seconds=time.perf_counter() - t0, reasons=tuple(reasons),
-        calibration=cal,
+        calibration=cal, log_err=log_err,
     )
 
 
@@ -697,7 +722,8 @@ MIN_LOG_ERR = 0.01
 class CalibrationPoint:
     """Exact and raw (KPM) d_eff of the same scenario at one chain length (dimensionless).
 
-    ``raw_low`` / ``raw_high`` are the raw estimate's range from the DOS error bars.
+    ``raw_low`` / ``raw_high`` are the raw estimate's range from the DOS error bars; ``raw_log_err`` the
+    jackknife error of ln raw over the random vectors (``DeffResult.log_err``), used as the fit weight.
     """
 
     sites: int
@@ -705,6 +731,7 @@ class CalibrationPoint:
     raw: float
     raw_low: float
     raw_high: float
+    raw_log_err: float | None = None
 
     @property
     def log_ratio(self) -> float:
@@ -712,6 +739,9 @@ class CalibrationPoint:
 
     @property
     def log_err(self) -> float:
+        """The jackknife error of ln raw when known, else half the log width of the raw range."""
+        if self.raw_log_err is not None and np.isfinite(self.raw_log_err):
+            return float(max(self.raw_log_err, MIN_LOG_ERR))
         return _log_err(self.raw, self.raw_low, self.raw_high)
 
 
@@ -785,17 +815,26 @@ def _ratio_prediction(points, target, raw_log_err, max_points, level):
     L = np.array([p.sites for p in pts], float)
     y = np.array([p.log_ratio for p in pts])
     s = np.array([p.log_err for p in pts])
+    x0 = 1.0 / float(target)
     if len(pts) >= 3 and np.ptp(L) > 0:
         fit, model = linear_fit(1.0 / L, y, s, absolute="inflate"), "ln(exact/raw) = a + b / L"
+        pred = prediction_interval(fit, x0, raw_log_err, level=level)
+        # model-form error: half the difference to the constant fit of the same points, in quadrature
+        # (a common practice for finite-size extrapolations: quote the spread over fit forms)
+        alt = prediction_interval(constant_fit(y, s, absolute="inflate"), x0, raw_log_err, level=level)
+        err = float(np.hypot(pred.err, 0.5 * (pred.value - alt.value)))
+        pred = Prediction(pred.x, pred.value, err, pred.value - pred.quantile * err, pred.value + pred.quantile * err,
+                          pred.level, pred.quantile, pred.dof)
     elif len(pts) == 2:
         fit, model = constant_fit(y, s, absolute="inflate"), "ln(exact/raw) = c"
+        pred = prediction_interval(fit, x0, raw_log_err, level=level)
     else:
         fit, model = constant_fit(y, s, absolute=True), "one size"
-    pred = prediction_interval(fit, 1.0 / float(target), raw_log_err, level=level)
+        pred = prediction_interval(fit, x0, raw_log_err, level=level)
     return fit, model, pred, tuple(int(p.sites) for p in pts)
 
 
-def calibrate_deff(points, target: int, raw: float, raw_low: float, raw_high: float, *,
+def calibrate_deff(points, target: int, raw: float, raw_low: float, raw_high: float, *, raw_log_err=None,
                    max_points: int = CALIBRATION_POINTS, level: float = CALIBRATION_LEVEL) -> DeffCalibration:
     """Calibrated d_eff = raw(L*) exp(q(L*)), q(L) the fitted ln(exact / raw) of the exact sizes (dimensionless).
 
@@ -807,8 +846,9 @@ def calibrate_deff(points, target: int, raw: float, raw_low: float, raw_high: fl
     is taken to converge; a finite-size ansatz, common practice); a line in L was tried and extrapolated
     the fast drop at small L too far (-17 % at L = 14 for the +y state of the mixed-field Ising ring).  The interval is the
     fit's prediction interval at ``level`` (Student-t when the scatter entered), including the target's
-    own raw error.  Validation: the largest exact size is left out, predicted from the others the same way,
-    and must fall inside its interval.
+    own raw error, and, for the line, half the difference between the line's and the constant's prediction
+    as a model-form error (added in quadrature).  Validation: the largest exact size is left out, predicted
+    from the others the same way, and must fall inside its interval.
 
     Parameters
     ----------
@@ -817,6 +857,8 @@ def calibrate_deff(points, target: int, raw: float, raw_low: float, raw_high: fl
     target : int
     raw, raw_low, raw_high : float
         Raw estimate at the target and its range.
+    raw_log_err : float, optional
+        Jackknife error of ln raw at the target.
     max_points : int
     level : float
 
@@ -832,7 +874,8 @@ def calibrate_deff(points, target: int, raw: float, raw_low: float, raw_high: fl
                        "alone is not validated)")
         return DeffCalibration(int(target), raw, raw_low, raw_high, (), (), "none", None, None, nan, nan, nan,
                                level, None, tuple(reasons))
-    fit, model, pred, used = _ratio_prediction(pts, target, _log_err(raw, raw_low, raw_high), max_points, level)
+    own = CalibrationPoint(int(target), 1.0, raw, raw_low, raw_high, raw_log_err).log_err
+    fit, model, pred, used = _ratio_prediction(pts, target, own, max_points, level)
     d, lo, hi = (float(raw * np.exp(v)) for v in (pred.value, pred.low, pred.high))
     validation = None
     if len(pts) >= 3:
@@ -886,7 +929,7 @@ def calibration_points(scenario, target: int, *, n_moments: int = 256, n_vectors
         est = estimate_deff(pr, n_moments=n_moments, n_vectors=n_vectors, rng=np.random.default_rng([seed, L]),
                             psi=psi, group=grp)
         out.append(CalibrationPoint(L, float(ex.d_eff), float(est.d_eff), float(est.d_eff_low),
-                                    float(est.d_eff_high)))
+                                    float(est.d_eff_high), est.log_err))
         L -= step or 1
     return sorted(out, key=lambda p: p.sites)
 
