@@ -53,7 +53,7 @@ def test_tau_int_of_ar1_noise():
     assert integrated_autocorrelation_time(t[:4000], white) == pytest.approx(dt / 2, rel=0.3)
 
 
-def test_relaxation_time_near_analytic():
+def test_band_entry_near_analytic():
     # rolling mean of d: B^2 e^{-2t/tau}/2 + s^2 = k^2 s^2 (k = 2, err << s) -> t* = (tau/2) ln(B^2 / (6 s^2))
     # (derived). The centred rolling window w reaches w/2 back into the transient, delaying the crossing
     # by at most ~w/2; single runs also scatter by ~1 time unit (measured over 100 seeds: 15.0-18.1).
@@ -63,7 +63,7 @@ def test_relaxation_time_near_analytic():
         t, v = _damped(seed)
         r = analyse_curve(t, v)
         assert r.settled, r.verdict
-        rts.append(r.relaxation_time)
+        rts.append(r.band_entry)
         widths.append(r.smoothing)
     w = np.mean(widths)
     assert t_star - 1.0 <= np.median(rts) <= t_star + w / 2
@@ -71,6 +71,52 @@ def test_relaxation_time_near_analytic():
     r = analyse_curve(*_damped(0))
     assert r.variance == pytest.approx(SIGMA**2, rel=0.3)  # noise variance; 30 %: ~100 independent samples
     assert "Settled" in r.verdict and "last half" in r.window_rule
+
+
+def test_relaxation_time_is_the_one_over_e_time():
+    # A0 + B e^{-t/tau} cos(omega t): the deviation stays below B/e after the last time the envelope-times-
+    # cosine exceeds it (derived; noise of 0.02 moves the crossing by < 0.1 on the 0.05 grid)
+    tt = np.arange(0.0, 50.0, 1e-4)
+    exact = tt[np.flatnonzero(np.exp(-tt / TAU) * np.abs(np.cos(OMEGA * tt)) > np.exp(-1.0))[-1]]
+    assert TAU - np.pi / OMEGA <= exact <= TAU  # within half a period of tau
+    for seed in range(5):
+        t, v = _damped(seed)
+        r = analyse_curve(t, v, exact_equilibrium=A0)
+        assert abs(r.relaxation_time - exact) < 0.15, (r.relaxation_time, exact)
+        assert r.relaxation_reference == "diagonal ensemble"
+
+
+@pytest.mark.parametrize("t_max", [20.0, 200.0, 2000.0])
+def test_relaxation_time_independent_of_t_max_exponential(t_max):
+    # A = 0.2 + 0.8 exp(-t / 3): the 1/e time is exactly tau = 3 (definition), whatever the run length
+    t = np.linspace(0.0, t_max, int(t_max / 0.01) + 1)
+    r = analyse_curve(t, 0.2 + 0.8 * np.exp(-t / 3.0), exact_equilibrium=0.2)
+    assert r.relaxation_time == pytest.approx(3.0, abs=0.011)
+    # with the window mean as reference (no exact value): the same to the window's bias e^{-t_max/2tau}
+    r2 = analyse_curve(t, 0.2 + 0.8 * np.exp(-t / 3.0))
+    assert r2.relaxation_time == pytest.approx(3.0, abs=0.05)
+
+
+def test_relaxation_time_of_bessel_curve_independent_of_t_max():
+    # XX chain from the Neel state: <sigma^z_0(t)> = J0(2t) in the infinite chain (Flesch et al., PRA 78,
+    # 033608 (2008)); equilibrium 0. The deviation |J0(2t)| falls below 1/e for good after the last local
+    # maximum of |J0| above 1/e; located with scipy (brentq on |J0(2t)| - 1/e), the same for every t_max.
+    from scipy.optimize import brentq
+    from scipy.special import j0
+
+    f = lambda x: abs(j0(2 * x)) - np.exp(-1.0)
+    # |J0(2t)| local maxima sit near the zeros of J1(2t); the last one above 1/e is the second (t ~ 1.75)
+    xs = np.linspace(0.01, 20, 200001)
+    above = np.flatnonzero(np.abs(j0(2 * xs)) > np.exp(-1.0))
+    k = above[-1]
+    t_ref = brentq(f, xs[k], xs[k + 1])
+    got = []
+    for t_max in (10.0, 40.0, 160.0):
+        t = np.arange(0.0, t_max + 1e-9, 0.005)
+        r = analyse_curve(t, j0(2 * t), exact_equilibrium=0.0)
+        got.append(r.relaxation_time)
+        assert r.relaxation_time == pytest.approx(t_ref, abs=0.006)
+    assert max(got) - min(got) < 1e-9
 
 
 def test_linear_drift_is_not_settled():

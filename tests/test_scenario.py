@@ -346,7 +346,8 @@ def test_missing_file_and_bad_toml(tmp_path):
 
 
 # ------------------------------------------------------------------------ examples
-EXAMPLE_NAMES = ["neel_j1j2.toml", "ising_tilted.toml", "xx_neel.toml", "disordered_heisenberg.toml"]
+EXAMPLE_NAMES = ["neel_j1j2.toml", "ising_tilted.toml", "xx_neel.toml", "disordered_heisenberg.toml",
+                 "ising_ring_y.toml"]
 
 
 @pytest.mark.parametrize("name", EXAMPLE_NAMES)

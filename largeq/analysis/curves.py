@@ -9,14 +9,25 @@ methods in statistical mechanics: foundations and new algorithms", lecture notes
 practice).  For a deterministic, quasi-periodic curve this treats the temporal fluctuations as noise
 with the measured correlation time, which is the usual practical reading (common practice).
 
-Relaxation time: raw points of a fluctuating curve leave a 2-sigma band about 5 % of the time even after
-relaxation, so the test uses the centred rolling mean of d(t) = (<A(t)> - A_eq)^2 over a short smoothing
-window w: t_relax = the first time after which sqrt(rolling mean of d) stays inside
+Relaxation time (physical units, independent of t_max): the 1/e time of the deviation from equilibrium,
+t_relax = the first time after which |<A(t)> - A_ref| <= D_0 / e for the rest of the run, D_0 = |<A(t_0)> - A_ref|
+the initial deviation and A_ref the diagonal-ensemble value when it is known, else the window mean (the
+1/e rule is common practice).  For <A> = A_ref + B e^{-t/tau} it gives tau; for an oscillating transient
+B e^{-t/tau} cos(omega t) the last crossing of the envelope, within half a period of tau.  It depends on the
+run only through A_ref.  It is not defined (NaN, with a reason) when the fluctuation band
+k sqrt(s^2 + err^2) is as wide as D_0 / e (the decay is not visible above the fluctuations), or when the
+curve is still outside D_0 / e at the end of the run.
+
+Band test (for the verdict only): raw points of a fluctuating curve leave a 2-sigma band about 5 % of the
+time even after relaxation, so the test uses the centred rolling mean of d(t) = (<A(t)> - A_eq)^2 over a
+short smoothing window w: ``band_entry`` = the first time after which sqrt(rolling mean of d) stays inside
 k * sqrt(s^2 + err^2) (k = ``band``, default 2) to the end of the run, where s^2 = min(sigma_A^2,
 (1.4826 MAD)^2) uses the robust median-absolute-deviation scale when it is smaller (a late excursion must
-not widen the band meant to detect it; common practice).  For a transient
-B e^{-t/tau} cos(omega t) on top of fluctuations of variance s^2 this is the time where
-B^2 e^{-2t/tau} / 2 + s^2 = k^2 (s^2 + err^2).
+not widen the band meant to detect it; common practice).
+
+Verdict against a known diagonal ensemble: with ``exact_equilibrium`` given, "settled" also needs
+|window mean - exact| <= AGREE_Z * err; otherwise the status is "drifting" (the window halves still differ,
+or the curve enters the band only inside the window) or "window too short", with the difference.
 """
 
 from __future__ import annotations
@@ -42,6 +53,10 @@ MIN_INDEPENDENT = 10.0
 SMOOTH_TAUS = 20.0
 #: Drift alarm threshold |m2 - m1| / sqrt(e1^2 + e2^2) (3 sigma, common practice).
 DRIFT_Z = 3.0
+#: Agreement with a known diagonal-ensemble value: |mean - exact| <= AGREE_Z err (3 sigma, common practice).
+AGREE_Z = 3.0
+#: The relaxation time is the time the deviation falls to 1/RELAX_FACTOR of its initial value (1/e).
+RELAX_FACTOR = float(np.e)
 
 
 def _check_curve(times, values):
@@ -176,11 +191,25 @@ class CurveAnalysis:
     band_halfwidth : float
         k sqrt(s^2 + err^2), s^2 = min(sigma_A^2, (1.4826 * median absolute deviation)^2) in the window.
     smoothing : float
-        Width w of the rolling window used for the relaxation-time test (time units).
+        Width w of the rolling window used for the band test (time units).
     relaxation_time : float
+        1/e time: first time after which |<A(t)> - A_ref| stays <= D_0 / e (see the module docstring); NaN
+        when not defined (``relaxation_note`` says why).
+    relaxation_threshold : float
+        D_0 / e (units of A).
+    relaxation_reference : str
+        'diagonal ensemble' or 'window mean' (A_ref).
+    relaxation_note : str
+    band_entry : float
         First time after which sqrt(rolling mean of d) stays inside the band; NaN if never.
     drift_z : float
         |mean(second half) - mean(first half)| / combined error, within the window.
+    exact_equilibrium : float or None
+        The diagonal-ensemble value the window mean was checked against.
+    exact_z : float or None
+        |window mean - exact| / err.
+    status : str
+        'settled', 'drifting', 'window too short' or 'not settled'.
     settled : bool
         True when none of the warnings below applies.
     reasons : tuple of str
@@ -209,6 +238,13 @@ class CurveAnalysis:
     settled: bool
     reasons: tuple
     verdict: str
+    relaxation_threshold: float = float("nan")
+    relaxation_reference: str = "window mean"
+    relaxation_note: str = ""
+    band_entry: float = float("nan")
+    exact_equilibrium: float | None = None
+    exact_z: float | None = None
+    status: str = "settled"
 
 
 def _rolling_mean(t: np.ndarray, v: np.ndarray, width: float) -> np.ndarray:
@@ -238,6 +274,7 @@ def analyse_curve(
     window_start: float | None = None,
     band: float = 2.0,
     smoothing: float | None = None,
+    exact_equilibrium: float | None = None,
 ) -> CurveAnalysis:
     """Equilibrium value, error bar, temporal variance and relaxation time of one curve <A(t)>.
 
@@ -258,7 +295,10 @@ def analyse_curve(
         Rolling-window width w for the relaxation-time test (time units); default
         min(max(SMOOTH_TAUS tau_int, 2 % of the run, 3 median grid steps), 10 % of the run), SMOOTH_TAUS
         = 20, so the rolling mean of d averages ~10 independent samples and noise alone rarely crosses the
-        band.
+        band.  Used by the band test only, not by the relaxation time.
+    exact_equilibrium : float, optional
+        The diagonal-ensemble value when known (exact diagonalization): the relaxation time is measured
+        from it, and "settled" requires the window mean to agree with it within AGREE_Z errors.
 
     Returns
     -------
@@ -301,20 +341,47 @@ def analyse_curve(
     rms = np.sqrt(_rolling_mean(t, distance, float(smoothing)))
     inside = rms <= halfwidth
     reasons = []
+    drifting = False
     if not inside[-1]:
-        t_relax = float("nan")
+        t_band = float("nan")
+        drifting = True
         reasons.append(
             "The curve is outside the band equilibrium +- "
             f"{band:g} sqrt(sigma^2 + err^2) at the end of the run, so it has not settled (or leaves the band again)."
         )
     else:
         outside = np.flatnonzero(~inside)
-        t_relax = float(t[0]) if outside.size == 0 else float(t[outside[-1] + 1])
-        if t_relax > w0:
+        t_band = float(t[0]) if outside.size == 0 else float(t[outside[-1] + 1])
+        if t_band > w0:
+            drifting = True
             reasons.append(
-                f"The curve enters the band for good only at t = {t_relax:.4g}, after the window start "
+                f"The curve enters the band for good only at t = {t_band:.4g}, after the window start "
                 f"{w0:.4g}; the window still contains part of the transient - start it later or run longer."
             )
+    # relaxation time: 1/e of the initial deviation from A_ref (physical units, independent of t_max)
+    if exact_equilibrium is not None:
+        exact_equilibrium = float(exact_equilibrium)
+        if not np.isfinite(exact_equilibrium):
+            raise ValueError(f"exact_equilibrium must be finite, got {exact_equilibrium!r}")
+        a_ref, ref_name = exact_equilibrium, "diagonal ensemble"
+    else:
+        a_ref, ref_name = eq, "window mean"
+    dev = np.abs(v - a_ref)
+    d0 = float(dev[0])
+    threshold = d0 / RELAX_FACTOR
+    if not threshold > halfwidth:
+        t_relax = float("nan")
+        relax_note = (f"not defined: the initial deviation {d0:.3g} is within e x the fluctuation band "
+                      f"{halfwidth:.3g}, so no decay is visible above the fluctuations")
+    elif dev[-1] > threshold:
+        t_relax = float("nan")
+        relax_note = (f"not reached: the deviation from the {ref_name} is still above 1/e of its initial value "
+                      f"({threshold:.3g}) at the end of the run")
+    else:
+        above = np.flatnonzero(dev > threshold)
+        t_relax = float(t[above[-1] + 1]) if above.size else float(t[0])
+        relax_note = (f"1/e time: |A(t) - A_ref| <= {threshold:.3g} = |A(0) - A_ref| / e from then on "
+                      f"(A_ref = {ref_name} {a_ref:.6g})")
     if wm.n_independent < MIN_INDEPENDENT:
         reasons.append(
             f"The window holds only {wm.n_independent:.1f} correlation times (T_window / 2 tau_int, "
@@ -336,22 +403,39 @@ def analyse_curve(
         comb = float(np.hypot(e1, e2))
         drift_z = abs(m2 - m1) / comb if comb > 0 else (0.0 if m1 == m2 else float("inf"))
         if drift_z > DRIFT_Z:
+            drifting = True
             reasons.append(
                 f"The running average still drifts: the two halves of the window differ by {m2 - m1:.3g}, "
                 f"{drift_z:.1f} times their combined error."
             )
+    exact_z = None
+    status = "settled"
+    if exact_equilibrium is not None:
+        diff = eq - exact_equilibrium
+        exact_z = abs(diff) / err if err > 0 else (0.0 if diff == 0 else float("inf"))
+        if exact_z > AGREE_Z:
+            status = "drifting" if drifting else "window too short"
+            reasons.append(
+                f"The window mean {eq:.6g} +- {err:.2g} differs from the exact diagonal-ensemble value "
+                f"{exact_equilibrium:.6g} by {diff:+.3g} ({exact_z:.1f} errors; "
+                + ("the curve is still drifting" if drifting else
+                   "the window is too short: the slow part of the relaxation is not averaged out")
+                + "): run longer or start the window later."
+            )
     settled = not reasons
+    if not settled and status == "settled":
+        status = "drifting" if drifting else "not settled"
     head = (
         f"equilibrium {eq:.6g} +- {err:.2g} (window t in [{w0:.4g}, {t[-1]:.4g}], {rule}); "
         f"temporal variance sigma^2 = {variance:.3g}; tau_int = {wm.tau_int:.3g}"
     )
+    if exact_equilibrium is not None:
+        head += f"; diagonal ensemble {exact_equilibrium:.6g} ({exact_z:.1f} errors away)"
     if settled:
-        verdict = (
-            f"Settled: {head}; relaxation time {t_relax:.4g} (rolling RMS deviation inside "
-            f"{band:g} sqrt(sigma^2 + err^2) = {halfwidth:.3g} from then on)."
-        )
+        verdict = f"Settled: {head}; relaxation time {t_relax:.4g} ({relax_note})."
     else:
-        verdict = "Not settled: " + head + ". " + " ".join(reasons)
+        verdict = (f"Not settled ({status}): " + head + ". " + " ".join(reasons)
+                   + f" Relaxation time {t_relax:.4g} ({relax_note}).")
     return CurveAnalysis(
         times=t,
         values=v,
@@ -373,4 +457,11 @@ def analyse_curve(
         settled=settled,
         reasons=tuple(reasons),
         verdict=verdict,
+        relaxation_threshold=float(threshold),
+        relaxation_reference=ref_name,
+        relaxation_note=relax_note,
+        band_entry=t_band,
+        exact_equilibrium=exact_equilibrium,
+        exact_z=None if exact_z is None else float(exact_z),
+        status=status,
     )

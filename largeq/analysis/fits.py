@@ -12,6 +12,14 @@ as it is; without errors (or ``absolute=False``) C is scaled by chi^2 / (n - 2),
 scatter (then the 1-sigma interval covers the truth with the Student-t probability of n - 2 degrees of
 freedom, e.g. 63 % for n = 6, not 68 %).  A prediction at x* has variance g^T C g with g = (1, x*); for the
 log fits the band is exp(mu -+ err), asymmetric in the original units.
+
+Given errors and the scatter.  With ``absolute="inflate"`` the given errors are used, but C is multiplied by
+the Birge ratio max(1, chi^2 / (n - 2)) when the points scatter more than their errors allow (R. T. Birge,
+Phys. Rev. 40, 207 (1932); common practice): the error can grow with the scatter, never shrink below what
+the points' own errors give.  :func:`prediction_interval` adds a new point's own error (times the same ratio)
+to g^T C g and uses the Student-t quantile of n - 2 degrees of freedom when the scatter entered (the usual
+least-squares prediction interval, e.g. N. R. Draper & H. Smith, "Applied Regression Analysis", 3rd ed.,
+Wiley 1998, section 3.1).
 """
 
 from __future__ import annotations
@@ -21,7 +29,7 @@ from dataclasses import dataclass
 import numpy as np
 
 __all__ = ["LinearFit", "Extrapolation", "linear_fit", "fit_log_deff", "fit_log_sigma", "fit_inverse_size",
-           "SizeTrend", "extrapolate"]
+           "SizeTrend", "extrapolate", "constant_fit", "Prediction", "prediction_interval"]
 
 
 @dataclass(frozen=True, eq=False)
@@ -40,7 +48,7 @@ class LinearFit:
     dof : int
         n - 2.
     absolute : bool
-        True: covariance from the given errors; False: scaled by chi2 / dof.
+        True: covariance from the given errors (times ``scale``); False: scaled by chi2 / dof.
     x, y, sigma : ndarray
         The data used (sigma all ones when none were given).
     """
@@ -54,6 +62,8 @@ class LinearFit:
     x: np.ndarray
     y: np.ndarray
     sigma: np.ndarray
+    scale: float = 1.0
+    n_params: int = 2
 
     @property
     def intercept_err(self) -> float:
@@ -71,9 +81,15 @@ class LinearFit:
         return value, np.sqrt(np.maximum(var, 0.0))
 
     def as_dict(self) -> dict:
+        if not self.absolute:
+            how = "from scatter (chi2/dof)"
+        elif self.scale > 1.0:
+            how = f"given, inflated by the scatter (chi2/dof = {self.scale:.3g})"
+        else:
+            how = "given"
         return {"intercept": self.intercept, "intercept_err": self.intercept_err, "slope": self.slope,
                 "slope_err": self.slope_err, "covariance": self.covariance.tolist(), "chi2": self.chi2,
-                "dof": self.dof, "errors": "given" if self.absolute else "from scatter (chi2/dof)"}
+                "dof": self.dof, "errors": how}
 
 
 def linear_fit(x, y, sigma=None, *, absolute: bool | None = None) -> LinearFit:
@@ -85,9 +101,11 @@ def linear_fit(x, y, sigma=None, *, absolute: bool | None = None) -> LinearFit:
         At least 2 points (3 when the covariance must come from the scatter).
     sigma : array_like, optional
         1-sigma errors of y (all > 0).  None: equal weights.
-    absolute : bool, optional
-        Whether sigma are true errors (covariance (X^T W X)^-1) or relative weights (covariance scaled by
-        chi2 / dof).  Default: True when sigma is given, False otherwise.
+    absolute : bool or "inflate", optional
+        Whether sigma are true errors (covariance (X^T W X)^-1, as ``scipy.optimize.curve_fit`` with
+        ``absolute_sigma=True``) or relative weights (covariance scaled by chi2 / dof).  "inflate": true
+        errors, covariance scaled by max(1, chi2 / dof) (needs n >= 3).  Default: True when sigma is given,
+        False otherwise.
     """
     x = np.asarray(x, dtype=float)
     y = np.asarray(y, dtype=float)
@@ -106,7 +124,10 @@ def linear_fit(x, y, sigma=None, *, absolute: bool | None = None) -> LinearFit:
     n = x.size
     if n < 2 or np.ptp(x) == 0:
         raise ValueError(f"a straight-line fit needs at least 2 distinct x values, got {n} point(s)")
-    if not absolute and n < 3:
+    inflate = isinstance(absolute, str)
+    if inflate and absolute != "inflate":
+        raise ValueError(f"absolute must be True, False or 'inflate', got {absolute!r}")
+    if (not absolute or inflate) and n < 3:
         raise ValueError("errors from the scatter need at least 3 points")
     w = 1.0 / s**2
     X = np.column_stack([np.ones(n), x])
@@ -116,9 +137,76 @@ def linear_fit(x, y, sigma=None, *, absolute: bool | None = None) -> LinearFit:
     r = (y - X @ p) / s
     chi2 = float(r @ r)
     dof = n - 2
-    if not absolute:
-        cov = cov * (chi2 / dof)
-    return LinearFit(float(p[0]), float(p[1]), cov, chi2, dof, bool(absolute), x, y, s)
+    scale = 1.0
+    if inflate:
+        scale = max(1.0, chi2 / dof)
+        cov = cov * scale
+    elif not absolute:
+        scale = chi2 / dof
+        cov = cov * scale
+    return LinearFit(float(p[0]), float(p[1]), cov, chi2, dof, bool(absolute), x, y, s, float(scale))
+
+
+def constant_fit(y, sigma, *, absolute: bool | str = "inflate") -> LinearFit:
+    """Weighted mean y = c (slope fixed to 0) as a :class:`LinearFit` with ``n_params = 1``.
+
+    c = sum w y / sum w, var c = 1 / sum w (times max(1, chi2 / (n - 1)) with "inflate", needs n >= 2).
+    """
+    y = np.asarray(y, dtype=float).reshape(-1)
+    s = np.broadcast_to(np.asarray(sigma, dtype=float), y.shape).copy()
+    if y.size < 1 or not np.all(np.isfinite(y)) or not np.all(np.isfinite(s) & (s > 0)):
+        raise ValueError("constant_fit needs finite y and finite errors > 0")
+    w = 1.0 / s**2
+    c = float(np.sum(w * y) / np.sum(w))
+    var = 1.0 / float(np.sum(w))
+    chi2 = float(np.sum(w * (y - c) ** 2))
+    dof = y.size - 1
+    scale = 1.0
+    if absolute == "inflate" or not absolute:
+        if dof < 1:
+            raise ValueError("errors from the scatter need at least 2 points for a constant")
+        scale = max(1.0, chi2 / dof) if absolute == "inflate" else chi2 / dof
+    cov = np.array([[var * scale, 0.0], [0.0, 0.0]])
+    return LinearFit(c, 0.0, cov, chi2, dof, bool(absolute), np.zeros_like(y), y, s, float(scale), 1)
+
+
+@dataclass(frozen=True)
+class Prediction:
+    """A new observation predicted from a fit: value, two-sided interval at ``level``, and its parts.
+
+    err is the 1-sigma prediction error sqrt(scale sigma_new^2 + g^T C g); (low, high) = value -+ q err with
+    q the Student-t quantile of ``dof`` degrees of freedom (normal quantile when the errors were taken as
+    given and the scatter did not inflate them).
+    """
+
+    x: float
+    value: float
+    err: float
+    low: float
+    high: float
+    level: float
+    quantile: float
+    dof: int
+
+
+def prediction_interval(fit: LinearFit, x: float, sigma_new: float = 0.0, *, level: float = 0.9) -> Prediction:
+    """Prediction interval of a new point at ``x`` with its own 1-sigma error ``sigma_new`` (fit units).
+
+    var = scale sigma_new^2 + g^T C g, g = (1, x) (C already holds the scatter scale); the quantile is
+    Student-t with ``fit.dof`` degrees of freedom when the covariance came from or was inflated by the
+    scatter, else normal.
+    """
+    from scipy import stats
+
+    if not (0.0 < level < 1.0):
+        raise ValueError(f"level must lie in (0, 1), got {level!r}")
+    v, e = fit.predict(float(x))
+    var = float(e) ** 2 + fit.scale * float(sigma_new) ** 2
+    err = float(np.sqrt(max(var, 0.0)))
+    from_scatter = (not fit.absolute) or fit.scale > 1.0
+    p = 0.5 * (1.0 + level)
+    q = float(stats.t.ppf(p, fit.dof)) if (from_scatter and fit.dof >= 1) else float(stats.norm.ppf(p))
+    return Prediction(float(x), float(v), err, float(v) - q * err, float(v) + q * err, float(level), q, int(fit.dof))
 
 
 @dataclass(frozen=True)

@@ -240,11 +240,16 @@ class ObservableSpec:
 
 @dataclass(frozen=True)
 class TimeGrid:
-    """Output times 0, dt, 2 dt, ... up to t_max: exactly one of ``points`` or ``step`` is set."""
+    """Output times 0, dt, 2 dt, ... up to t_max: exactly one of ``points`` or ``step`` is set.
+
+    ``window_start`` (optional, time units, 0 <= window_start < t_max): start of the late window whose
+    time average gives the equilibrium value and temporal variance; None means the last half of the run.
+    """
 
     t_max: float
     points: int | None = None
     step: float | None = None
+    window_start: float | None = None
 
     @property
     def n_points(self) -> int:
@@ -816,7 +821,7 @@ def _parse_observable(ctx: _Ctx, item: Any, p: str, chain: Chain, bond_pairs: di
 
 
 def _parse_time(ctx: _Ctx, t: dict) -> TimeGrid:
-    ctx.keys(t, "time", ("t_max", "points", "step"))
+    ctx.keys(t, "time", ("t_max", "points", "step", "window_start"))
     if "t_max" not in t:
         ctx.fail("time.t_max", MISSING, "a finite number > 0 (required)")
     t_max = ctx.number(t["t_max"], "time.t_max", positive=True, hi=MAX_TIME)
@@ -824,12 +829,18 @@ def _parse_time(ctx: _Ctx, t: dict) -> TimeGrid:
     if has_p == has_s:
         ctx.fail("time.points" if has_p else "time", {k: t[k] for k in ("points", "step") if k in t},
                  "exactly one of 'points' or 'step'")
+    ws = None
+    if "window_start" in t:
+        ws = ctx.number(t["window_start"], "time.window_start", nonneg=True,
+                        what=f"a finite number >= 0 and < t_max = {t_max:g}")
+        if not ws < t_max:
+            ctx.fail("time.window_start", t["window_start"], f"a finite number >= 0 and < t_max = {t_max:g}")
     if has_p:
         pts = ctx.integer(t["points"], "time.points", 2, MAX_POINTS)
-        return TimeGrid(t_max, points=pts)
+        return TimeGrid(t_max, points=pts, window_start=ws)
     step = ctx.number(t["step"], "time.step", positive=True, hi=t_max,
                       what=f"a finite number > 0 and <= t_max = {t_max:g}")
-    grid = TimeGrid(t_max, step=step)
+    grid = TimeGrid(t_max, step=step, window_start=ws)
     if t_max / step > MAX_POINTS:
         ctx.fail("time.step", step, f"a step giving at most {MAX_POINTS} output times")
     return grid
@@ -916,6 +927,8 @@ def scenario_to_dict(scenario: Scenario) -> dict:
         tm["points"] = s.time.points
     else:
         tm["step"] = s.time.step
+    if s.time.window_start is not None:
+        tm["window_start"] = s.time.window_start
     d["time"] = tm
     d["sector"] = {"up_spins": s.sector.up_spins}
     d["numerics"] = {"tolerance": s.numerics.tolerance, "method": s.numerics.method,

@@ -149,11 +149,15 @@ def run_disorder_relaxation(scenario: Scenario, n_realizations: int, folder=None
         summaries.append(run.summary)
         if echo:
             echo(f"  realisation {k} (seed {seed}): {run.summary['wall_seconds']:.1f} s")
-    summary = _aggregate_relax(scenario, out, seeds, summaries, time.perf_counter() - t0)
+    summary = _aggregate_relax(scenario, out, seeds, summaries, time.perf_counter() - t0,
+                               window_start=options.window_start)
     return DisorderRun(out, summary)
 
 
-def _aggregate_relax(scenario, out: Path, seeds, summaries, wall) -> dict:
+def _aggregate_relax(scenario, out: Path, seeds, summaries, wall, window_start=None) -> dict:
+    from largeq.analysis.curves import analyse_curve
+    from largeq.workflows.relax import window_start_of
+
     trees = [read_results(realization_folder(out, k) / "results.h5", quantities=False)[0] for k in range(len(seeds))]
     times = np.asarray(trees[0]["curves"]["times"], dtype=float)
     names = list(summaries[0]["observables"])
@@ -168,6 +172,13 @@ def _aggregate_relax(scenario, out: Path, seeds, summaries, wall) -> dict:
         tree_curves[f"{n}_realizations"] = Quantity(np.array([np.real(t["curves"][n]) for t in trees]), "1",
                                                      "every realisation (rows)")
     obs = {n: {key: aggregate([s["observables"][n][key] for s in summaries]) for key in OBS_KEYS} for n in names}
+    ws = window_start_of(scenario, window_start)
+    for n in names:
+        # the disorder-averaged curve analysed like one curve: its 1/e relaxation time (physical units)
+        a = analyse_curve(times, curves[n][0], window_start=ws)
+        obs[n]["average_curve"] = {"equilibrium": a.equilibrium, "equilibrium_err": a.equilibrium_err,
+                                   "relaxation_time": a.relaxation_time, "relaxation_time_definition":
+                                   a.relaxation_note, "status": a.status, "window": [a.window_start, a.window_end]}
     cost = {"wall_seconds": aggregate([s["wall_seconds"] for s in summaries]),
             "matvecs": aggregate([s["matvecs"] for s in summaries])}
     summary = {
@@ -183,7 +194,8 @@ def _aggregate_relax(scenario, out: Path, seeds, summaries, wall) -> dict:
     attrs = run_attributes("relax", scenario_to_toml(scenario), scenario.title, seeds=list(seeds),
                            base_seed=base_seed(scenario), realizations=len(seeds))
     write_results(out / "results.h5", {"curves": tree_curves, "observables": {
-        n: {k: {kk: vv for kk, vv in v.items()} for k, v in o.items()} for n, o in obs.items()}}, attrs=attrs)
+        n: {k: {kk: vv for kk, vv in v.items() if not isinstance(vv, (str, list))} for k, v in o.items()}
+        for n, o in obs.items()}}, attrs=attrs)
     write_summary(out / "summary.json", summary)
     plots.plot_relaxation(out / "relaxation.png", times, {n: c[0] for n, c in curves.items()},
                           equilibrium={n: (obs[n]["equilibrium"]["mean"], obs[n]["equilibrium"]["spread"])
@@ -196,6 +208,9 @@ def _aggregate_relax(scenario, out: Path, seeds, summaries, wall) -> dict:
         rows.append((f"{n}: equilibrium value (mean ± s.e.)", e["mean"], e["stderr"]))
         rows.append((f"{n}: spread between realisations", html.format_number(e["spread"]), ""))
         rows.append((f"{n}: temporal variance σ² (mean ± s.e.)", v["mean"], v["stderr"]))
+        ac = obs[n]["average_curve"]
+        rows.append((f"{n}: relaxation time of the averaged curve", html.format_number(ac["relaxation_time"]),
+                     ac["relaxation_time_definition"]))
     html.write_report(out / "report.html", title=scenario.title, subtitle=(
         f"largeq {__version__}: disorder average of {len(seeds)} realisations, L = {summary['sites']}"), sections=[
         html.Section("Disorder-averaged relaxation", images=["relaxation.png"], table=rows,

@@ -64,6 +64,9 @@ class RelaxOptions:
         "auto": evolve in momentum (and reflection / spin-flip) sectors when H is translation
         invariant, the start is a z-basis state and every observable is diagonal; "off": always
         the magnetization sector (or full space).
+    window_start : float or None
+        Start of the late averaging window (time units); None takes the scenario's ``time.window_start``
+        (itself default: the last half of the run).
     """
 
     checkpoint_seconds: float | None = None
@@ -73,6 +76,12 @@ class RelaxOptions:
     equilibration: str = "auto"
     seed: int = ESTIMATOR_SEED
     symmetry: str = "auto"
+    window_start: float | None = None
+
+
+def window_start_of(scenario, override: float | None = None) -> float | None:
+    """The late window's start: ``override`` if given, else the scenario's ``time.window_start`` (or None)."""
+    return override if override is not None else scenario.time.window_start
 
 
 @dataclass(frozen=True)
@@ -386,9 +395,15 @@ def _execute_sectors(problem: Problem, text: str, folder: Path, times, plan, opt
 def _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, matvecs, wall, captured,
             options, sectors: dict | None = None) -> dict:
     scenario = problem.scenario
-    analyses = {n: analyse_curve(times, rec.values[n]) for n in rec.names}
+    ws = window_start_of(scenario, options.window_start)
+    analyses = {n: analyse_curve(times, rec.values[n], window_start=ws) for n in rec.names}
     eq = equilibration_report(problem, times, rec.survival, analyses, mode=options.equilibration,
                               seed=options.seed, energy=float(rec.energy[0]))
+    exact_de = {n: eq["per_observable"].get(n, {}).get("diagonal_ensemble") for n in rec.names}
+    if any(v is not None for v in exact_de.values()):
+        # the diagonal ensemble is known: the verdict must agree with it (see analysis.curves)
+        analyses = {n: analyse_curve(times, rec.values[n], window_start=ws, exact_equilibrium=exact_de[n])
+                    for n in rec.names}
     norm_drift = float(np.max(np.abs(rec.norm - 1.0)))
     energy_drift = float(np.max(np.abs(rec.energy - rec.energy[0])))
     obs_meta = {n: problem.observables[n] for n in rec.names}
@@ -407,7 +422,9 @@ def _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, m
                 "temporal_variance": a.variance,
                 "tau_int": a.tau_int,
                 "relaxation_time": a.relaxation_time,
+                "relaxation_threshold": a.relaxation_threshold,
                 "settled": a.settled,
+                "status": a.status,
                 "window_start": a.window_start,
                 "window_end": a.window_end,
                 "running_average": a.running_average,
@@ -472,7 +489,9 @@ def _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, m
                 "equilibrium_err": a.equilibrium_err,
                 "temporal_variance": a.variance,
                 "relaxation_time": a.relaxation_time,
+                "relaxation_time_definition": a.relaxation_note,
                 "settled": a.settled,
+                "status": a.status,
                 "window": [a.window_start, a.window_end],
                 "verdict": a.verdict,
                 **eq["per_observable"][n],
@@ -514,7 +533,7 @@ def _plots_and_report(problem, folder: Path, times, rec, analyses, summary, eq_r
                      f"window t = {a.window_start:.3g} .. {a.window_end:.3g}"))
         rows.append((f"{n}: temporal variance σ²", html.format_number(a.variance), ""))
         rows.append((f"{n}: relaxation time", html.format_number(a.relaxation_time),
-                     "settled" if a.settled else "not settled"))
+                     f"{a.status}; {a.relaxation_note}"))
     sections = [
         html.Section("Relaxation curves", images=["relaxation.png"], table=rows,
                      paragraphs=[f"{n}: {a.verdict}" for n, a in analyses.items()]),
