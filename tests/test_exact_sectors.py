@@ -13,12 +13,10 @@ from largeq.analysis.bounds import GOE_R, POISSON_R, level_spacing_ratio
 from largeq.analysis.equilibration import (DenseLimitError, conserved_left_out, exact_equilibration, exact_plan,
                                            exact_thermal_values)
 from largeq.analysis.levels import level_ratios_by_spin, spin_resolve
-from largeq.basis.blocks import block_labels, state_blocks, symmetry_blocks, symmetry_group
+from largeq.basis.blocks import symmetry_blocks, symmetry_group
 from largeq.engines.exact import diagonalize, quench_sectors
 from largeq.engines.exact_split import gap_clusters, quench_split
-from largeq.model import build as model
 from largeq.model import symmetry as msym
-from largeq.model.pauli import PauliSum, pauli_string
 from largeq.operators.problem import build_problem
 from largeq.scenario.spec import parse_scenario
 

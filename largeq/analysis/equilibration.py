@@ -42,12 +42,12 @@ import scipy.optimize
 from largeq.analysis.bounds import (GOE_R, POISSON_R, DeffEstimate, SpacingRatio, amplitude_eta,
                                     deff_from_densities, fluctuation_bound, survival_plateau)
 from largeq.engines.bounds import spectral_bounds
-from largeq.engines.exact import ExactQuench, diagonalize, quench_exact
+from largeq.engines.exact import ExactQuench, diagonalize
 from largeq.engines.kpm import (chebyshev_moments, chebyshev_scale, kernel_factors, local_density,
                                 reconstruct_cumulative, reconstruct_density)
 from largeq.engines.typical import canonical_averages, microcanonical_average, random_state, solve_beta
 from largeq.analysis.levels import resolved_level_ratio
-from largeq.basis.blocks import (StateBlock, StateSubspace, SymmetryGroup, state_blocks, state_subspace,
+from largeq.basis.blocks import (StateBlock, SymmetryGroup, state_blocks, state_subspace,
                                  symmetry_blocks, symmetry_group)
 from largeq.engines.exact_split import quench_split, split_memory_bytes
 

@@ -17,7 +17,7 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.linalg
 
-from largeq.analysis.bounds import SpacingRatio, level_spacing_ratio
+from largeq.analysis.bounds import level_spacing_ratio
 from largeq.basis.blocks import Block, SymmetryGroup, symmetry_blocks, symmetry_group
 from largeq.model.symmetry import total_spin_squared
 from largeq.operators.pauli_operator import PauliOperator
