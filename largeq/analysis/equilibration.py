@@ -257,7 +257,8 @@ class ExactPlan:
     largest : int
         Largest block dimension (decides feasibility, not the basis dimension).
     memory_bytes : int
-        Forecast peak of the dense work (``largeq.engines.exact_split.split_memory_bytes``).
+        Forecast peak: the dense work (``largeq.engines.exact_split.split_memory_bytes``) plus H in CSR,
+        the group's permutation tables and the temporaries of one block basis.
     complex_valued : bool
     description : str
     """
@@ -294,7 +295,14 @@ def exact_plan(problem, *, psi=None, group: SymmetryGroup | None = None, reduce:
         complex_valued = (not real_h) or (not real_psi)
         desc = f"whole basis ({basis.label})"
     dims = [b.dim for b in blocks]
-    return ExactPlan(blocks, max(dims), split_memory_bytes(dims, complex_valued), complex_valued, desc)
+    # besides the dense work: H in CSR on the basis (plus one product in the compression), the permutation
+    # tables of the group and the temporaries of one block basis Q (rows, columns, values per element)
+    nnz = basis.dim * (len(problem.hamiltonian.groups()) + 1)
+    tables = 2 * 12 * nnz + 16 * basis.dim * 4
+    if group is not None:
+        tables += 8 * basis.dim * group.order + 24 * basis.dim * max(len(b.character) for b in blocks)
+    mem = split_memory_bytes(dims, complex_valued) + tables
+    return ExactPlan(blocks, max(dims), int(mem), complex_valued, desc)
 
 
 def exact_equilibration(problem, *, max_dim: int = 13000, reduce: bool = True, psi=None,
