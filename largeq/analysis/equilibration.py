@@ -20,10 +20,16 @@ units; observables are Pauli operators):
   :func:`exact_thermal_values` gives the same from the dense spectrum of every symmetry block of the
   basis (small sizes), for the cross-check.
 
+Symmetry blocks.  H is block diagonal in the 1-d characters of its symmetry group (all products of
+translations, reflection and spin flip that commute with H; ``largeq.model.symmetry``).
+``exact_equilibration`` splits the state over the blocks it touches, diagonalizes each on its own and
+joins them with cross-block matrix elements of the observables, levels degenerate across blocks grouped
+into one eigenspace (``largeq.engines.exact_split``): the results equal those of the whole basis, and the
+largest touched block -- not the basis -- decides feasibility.  Where H conserves the total spin, <r> and
+the exact thermal values are resolved in S as well (``largeq.analysis.levels``).
+
 Symmetric subspace.  The initial state's dynamics never leaves range(P_lambda), the subspace fixed by
-the symmetry operations that leave psi invariant up to a phase (``largeq.basis.blocks``).  All exact
-quench quantities computed there equal those of the whole basis (eigenspace projectors commute with
-P_lambda), so ``exact_equilibration`` diagonalizes only that subspace (``reduce=True``, default), and
+the symmetry operations that leave psi invariant up to a phase (``largeq.basis.blocks``).
 ``estimate_deff`` uses the density of states of that subspace: with the DOS of the whole basis the
 estimate would count levels the state can never occupy (too large by about the number of symmetry
 sectors).
@@ -42,7 +48,7 @@ import scipy.optimize
 from largeq.analysis.bounds import (GOE_R, POISSON_R, DeffEstimate, SpacingRatio, amplitude_eta,
                                     deff_from_densities, fluctuation_bound, survival_plateau)
 from largeq.engines.bounds import spectral_bounds
-from largeq.engines.exact import ExactQuench, diagonalize
+from largeq.engines.exact import ExactQuench, Spectrum
 from largeq.engines.kpm import (chebyshev_moments, chebyshev_scale, kernel_factors, local_density,
                                 reconstruct_cumulative, reconstruct_density)
 from largeq.engines.typical import canonical_averages, microcanonical_average, random_state, solve_beta
@@ -376,8 +382,12 @@ def exact_equilibration(problem, *, max_dim: int = 13000, reduce: bool = True, p
         else:
             q, vec = blk.build(group, psi)
             hm = _compress(q, h)
-        spec = diagonalize(hm, max_dim=max_dim)
-        del hm
+        # hm is Hermitian by construction (_compress); eigh overwrites it (peak: hm + eigenvectors)
+        if np.iscomplexobj(hm) and not np.any(hm.imag):
+            hm = np.ascontiguousarray(hm.real)
+        e_b, v_b = scipy.linalg.eigh(hm, overwrite_a=True, check_finite=False)
+        spec = Spectrum(e_b, v_b)
+        del hm, e_b, v_b
         sectors.append((spec, vec))
         qs.append(q)
     del h

@@ -284,7 +284,7 @@ def symmetry_blocks(problem, *, group: SymmetryGroup | None = None, which: str |
     if which == "all":
         labels = block_labels(group)
     elif which == "trivial":
-        labels = [(_trivial(group), "trivial character (k = 0, all parities +1)")]
+        labels = [(_trivial(group), "trivial character (every symmetry operation +1: k = 0, all parities +1)")]
     elif isinstance(which, dict):
         chi = _legacy_character(group, which) if set(which) <= {"k", "reflection", "spin_flip"} else dict(which)
         labels = [(chi, ", ".join(f"{msym.element_name(k)}: {complex(v):.3g}" for k, v in sorted(chi.items())
