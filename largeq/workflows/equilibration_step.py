@@ -47,7 +47,12 @@ def equilibration_report(problem, times, survival, analyses, *, mode: str = "aut
         out["summary"]["note"] = "not requested (--equilibration off)"
         return out
     exact = None
-    if mode in ("exact", "auto"):
+    # no symmetry group of a chain has more than 4 L elements: a block is at least dim / (4 L) large
+    hopeless = mode == "auto" and dim > 4 * problem.n_sites * EXACT_AUTO_MAX_BLOCK
+    if hopeless:
+        out["summary"]["exact_note"] = (f"basis dimension {dim:,}: every symmetry block is larger than the automatic "
+                                        f"limit {EXACT_AUTO_MAX_BLOCK:,}")
+    elif mode in ("exact", "auto"):
         plan = exact_plan(problem)
         if mode == "exact" or plan.largest <= EXACT_AUTO_MAX_BLOCK:
             try:
