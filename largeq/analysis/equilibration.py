@@ -52,7 +52,7 @@ from largeq.engines.exact import ExactQuench, Spectrum
 from largeq.engines.kpm import (chebyshev_moments, chebyshev_scale, kernel_factors, local_density,
                                 reconstruct_cumulative, reconstruct_density)
 from largeq.engines.typical import canonical_averages, microcanonical_average, random_state, solve_beta
-from largeq.analysis.levels import resolved_level_ratio
+from largeq.analysis.levels import resolved_level_statistics
 from largeq.basis.blocks import (StateBlock, SymmetryGroup, state_blocks, state_subspace,
                                  symmetry_blocks, symmetry_group)
 from largeq.engines.exact_split import quench_split, split_memory_bytes
@@ -202,6 +202,9 @@ class ExactEquilibration:
     seconds : float
     block_dims : tuple of int
         Dimensions of the blocks diagonalized one by one.
+    level_ratios_by_spin : dict S -> dict
+        <r> (mean, stderr, n, levels) in every (block, S) sub-block of the level-statistics block with
+        at least 10 levels, when H conserves the total spin.
     """
 
     n_sites: int
@@ -223,6 +226,7 @@ class ExactEquilibration:
     quench: ExactQuench = field(repr=False)
     seconds: float = 0.0
     block_dims: tuple = ()
+    level_ratios_by_spin: dict = field(default_factory=dict)
 
     def summary(self) -> dict:
         """Plain numbers for JSON (no arrays)."""
@@ -234,7 +238,8 @@ class ExactEquilibration:
             "n_degenerate_gaps": self.n_degenerate_gaps,
             "level_ratio": None if self.level_ratio is None else {
                 "mean": self.level_ratio.mean_r, "stderr": self.level_ratio.stderr, "n": self.level_ratio.n,
-                "block": self.level_block, "goe": GOE_R, "poisson": POISSON_R},
+                "block": self.level_block, "goe": GOE_R, "poisson": POISSON_R,
+                "by_total_spin": {str(k): v for k, v in self.level_ratios_by_spin.items()}},
             "observables": {n: o.__dict__.copy() for n, o in self.observables.items()},
             "block_dimensions": list(self.block_dims), "seconds": self.seconds,
         }
@@ -425,11 +430,12 @@ def exact_equilibration(problem, *, max_dim: int = 13000, reduce: bool = True, p
             ratio=oq.variance / br.value if br.value > 0 else float("inf"), holds=br.holds(oq.variance),
             reference=br.reference,
         )
-    ratio, block_desc = None, "not computed"
+    ratio, block_desc, per_spin = None, "not computed", {}
     if level_statistics and group is not None:
         try:
-            ratio, blk, _ = resolved_level_ratio(problem, group=group, max_dim=max_dim)
+            ratio, blk, _, per = resolved_level_statistics(problem, group=group, max_dim=max_dim)
             block_desc = f"{blk.label} (dimension {blk.dim:,}; {group.describe()})"
+            per_spin = {s: {"mean": r.mean_r, "stderr": r.stderr, "n": r.n, "levels": n} for s, (r, n) in per.items()}
         except ValueError as exc:
             block_desc = f"not available: {exc}"
     occupied = int(np.count_nonzero(eq.level_weights > 1e-14))
@@ -439,7 +445,7 @@ def exact_equilibration(problem, *, max_dim: int = 13000, reduce: bool = True, p
         energy_variance=eq.energy_variance, gap_degeneracy=int(eq.gap_degeneracy),
         n_degenerate_gaps=int(eq.n_degenerate_gaps), observables=results, level_ratio=ratio,
         level_block=block_desc, energies=energies, quench=eq, seconds=time.perf_counter() - t0,
-        block_dims=tuple(plan.dims),
+        block_dims=tuple(plan.dims), level_ratios_by_spin=per_spin,
     )
 
 
