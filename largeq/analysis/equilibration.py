@@ -23,10 +23,16 @@ units; observables are Pauli operators):
   :func:`exact_thermal_values` gives the same from the dense spectrum of every symmetry block of the
   basis (small sizes), for the cross-check.
 
+Symmetry blocks.  H is block diagonal in the 1-d characters of its symmetry group (all products of
+translations, reflection and spin flip that commute with H; ``largeq.model.symmetry``).
+``exact_equilibration`` splits the state over the blocks it touches, diagonalizes each on its own and
+joins them with cross-block matrix elements of the observables, levels degenerate across blocks grouped
+into one eigenspace (``largeq.engines.exact_split``): the results equal those of the whole basis, and the
+largest touched block -- not the basis -- decides feasibility.  Where H conserves the total spin, <r> and
+the exact thermal values are resolved in S as well (``largeq.analysis.levels``).
+
 Symmetric subspace.  The initial state's dynamics never leaves range(P_lambda), the subspace fixed by
-the symmetry operations that leave psi invariant up to a phase (``largeq.basis.blocks``).  All exact
-quench quantities computed there equal those of the whole basis (eigenspace projectors commute with
-P_lambda), so ``exact_equilibration`` diagonalizes only that subspace (``reduce=True``, default), and
+the symmetry operations that leave psi invariant up to a phase (``largeq.basis.blocks``).
 ``estimate_deff`` uses the density of states of that subspace: with the DOS of the whole basis the
 estimate would count levels the state can never occupy (too large by about the number of symmetry
 sectors).
@@ -46,13 +52,13 @@ from largeq.analysis.equilibrium_formulas import (GOE_R, POISSON_R, DeffEstimate
                                                    deff_from_densities, fluctuation_bound, survival_plateau)
 from largeq.analysis.fits import LinearFit, Prediction, constant_fit, linear_fit, prediction_interval
 from largeq.engines.bounds import spectral_bounds
-from largeq.engines.exact import ExactQuench, diagonalize
+from largeq.engines.exact import ExactQuench, Spectrum
 from largeq.engines.kpm import (chebyshev_moments, chebyshev_scale, kernel_factors, local_density,
                                 reconstruct_cumulative, reconstruct_density)
 from largeq.engines.typical import canonical_averages, microcanonical_average, random_state, solve_beta
-from largeq.analysis.levels import resolved_level_ratio
-from largeq.basis.blocks import (StateBlock, SymmetryGroup, state_blocks, state_subspace, symmetry_blocks,
-                                 symmetry_group)
+from largeq.analysis.levels import resolved_level_statistics
+from largeq.basis.blocks import (StateBlock, SymmetryGroup, state_blocks, state_subspace,
+                                 symmetry_blocks, symmetry_group)
 from largeq.engines.exact_split import quench_split, split_memory_bytes
 from largeq.constants import BOUNDS_SEED, MAX_DENSE_DIM
 
@@ -204,6 +210,9 @@ class ExactEquilibration:
     seconds : float
     block_dims : tuple of int
         Dimensions of the blocks diagonalized one by one.
+    level_ratios_by_spin : dict S -> dict
+        <r> (mean, stderr, n, levels) in every (block, S) sub-block of the level-statistics block with
+        at least 10 levels, when H conserves the total spin.
     """
 
     n_sites: int
@@ -225,6 +234,7 @@ class ExactEquilibration:
     quench: ExactQuench = field(repr=False)
     seconds: float = 0.0
     block_dims: tuple = ()
+    level_ratios_by_spin: dict = field(default_factory=dict)
 
     def summary(self) -> dict:
         """Plain numbers for JSON (no arrays)."""
@@ -236,7 +246,8 @@ class ExactEquilibration:
             "n_degenerate_gaps": self.n_degenerate_gaps,
             "level_ratio": None if self.level_ratio is None else {
                 "mean": self.level_ratio.mean_r, "stderr": self.level_ratio.stderr, "n": self.level_ratio.n,
-                "block": self.level_block, "goe": GOE_R, "poisson": POISSON_R},
+                "block": self.level_block, "goe": GOE_R, "poisson": POISSON_R,
+                "by_total_spin": {str(k): v for k, v in self.level_ratios_by_spin.items()}},
             "observables": {n: o.__dict__.copy() for n, o in self.observables.items()},
             "block_dimensions": list(self.block_dims), "seconds": self.seconds,
         }
@@ -265,7 +276,8 @@ class ExactPlan:
     largest : int
         Largest block dimension (decides feasibility, not the basis dimension).
     memory_bytes : int
-        Forecast peak of the dense work (``largeq.engines.exact_split.split_memory_bytes``).
+        Forecast peak: the dense work (``largeq.engines.exact_split.split_memory_bytes``) plus H in CSR,
+        the group's permutation tables and the temporaries of one block basis.
     complex_valued : bool
     description : str
     """
@@ -302,7 +314,14 @@ def exact_plan(problem, *, psi=None, group: SymmetryGroup | None = None, reduce:
         complex_valued = (not real_h) or (not real_psi)
         desc = f"whole basis ({basis.label})"
     dims = [b.dim for b in blocks]
-    return ExactPlan(blocks, max(dims), split_memory_bytes(dims, complex_valued), complex_valued, desc)
+    # besides the dense work: H in CSR on the basis (plus one product in the compression), the permutation
+    # tables of the group and the temporaries of one block basis Q (rows, columns, values per element)
+    nnz = basis.dim * (len(problem.hamiltonian.groups()) + 1)
+    tables = 2 * 12 * nnz + 16 * basis.dim * 4
+    if group is not None:
+        tables += 8 * basis.dim * group.order + 24 * basis.dim * max(len(b.character) for b in blocks)
+    mem = split_memory_bytes(dims, complex_valued) + tables
+    return ExactPlan(blocks, max(dims), int(mem), complex_valued, desc)
 
 
 def exact_equilibration(problem, *, max_dim: int = MAX_DENSE_DIM, reduce: bool = True, psi=None,
@@ -376,8 +395,12 @@ def exact_equilibration(problem, *, max_dim: int = MAX_DENSE_DIM, reduce: bool =
         else:
             q, vec = blk.build(group, psi)
             hm = _compress(q, h)
-        spec = diagonalize(hm, max_dim=max_dim)
-        del hm
+        # hm is Hermitian by construction (_compress); eigh overwrites it (peak: hm + eigenvectors)
+        if np.iscomplexobj(hm) and not np.any(hm.imag):
+            hm = np.ascontiguousarray(hm.real)
+        e_b, v_b = scipy.linalg.eigh(hm, overwrite_a=True, check_finite=False)
+        spec = Spectrum(e_b, v_b)
+        del hm, e_b, v_b
         sectors.append((spec, vec))
         qs.append(q)
     del h
@@ -415,11 +438,12 @@ def exact_equilibration(problem, *, max_dim: int = MAX_DENSE_DIM, reduce: bool =
             ratio=oq.variance / br.value if br.value > 0 else float("inf"), holds=br.holds(oq.variance),
             reference=br.reference,
         )
-    ratio, block_desc = None, "not computed"
+    ratio, block_desc, per_spin = None, "not computed", {}
     if level_statistics and group is not None:
         try:
-            ratio, blk, _ = resolved_level_ratio(problem, group=group, max_dim=max_dim)
+            ratio, blk, _, per = resolved_level_statistics(problem, group=group, max_dim=max_dim)
             block_desc = f"{blk.label} (dimension {blk.dim:,}; {group.describe()})"
+            per_spin = {s: {"mean": r.mean_r, "stderr": r.stderr, "n": r.n, "levels": n} for s, (r, n) in per.items()}
         except ValueError as exc:
             block_desc = f"not available: {exc}"
     occupied = int(np.count_nonzero(eq.level_weights > 1e-14))
@@ -429,7 +453,7 @@ def exact_equilibration(problem, *, max_dim: int = MAX_DENSE_DIM, reduce: bool =
         energy_variance=eq.energy_variance, gap_degeneracy=int(eq.gap_degeneracy),
         n_degenerate_gaps=int(eq.n_degenerate_gaps), observables=results, level_ratio=ratio,
         level_block=block_desc, energies=energies, quench=eq, seconds=time.perf_counter() - t0,
-        block_dims=tuple(plan.dims),
+        block_dims=tuple(plan.dims), level_ratios_by_spin=per_spin,
     )
 
 
@@ -681,7 +705,7 @@ class DeffResult:
 def estimate_deff(problem, *, n_moments: int = 256, n_vectors: int = 20, rng: np.random.Generator,
                   psi=None, bounds=None, resolve_symmetries: bool = True, survival=None,
                   level_ratio: SpacingRatio | None = None, group: SymmetryGroup | None = None,
-                  calibration=None, calibration_max_dim: int = 13000) -> DeffResult:
+                  calibration=None, calibration_max_dim: int = MAX_DENSE_DIM) -> DeffResult:
     """d_eff ~ 1 / (eta int rho_psi(E)^2 / rho(E) dE) from KPM densities (dimensionless).
 
     rho_psi: KPM LDOS of the initial state (exact moments); rho: KPM DOS of the subspace the state lives
@@ -1009,7 +1033,7 @@ def calibrate_deff(points, target: int, raw: float, raw_low: float, raw_high: fl
 
 
 def calibration_points(scenario, target: int, *, n_moments: int = 256, n_vectors: int = 20, seed: int = 0,
-                       max_dim: int = 13000, n_sizes: int = CALIBRATION_POINTS + 1, min_sites: int = 6,
+                       max_dim: int = MAX_DENSE_DIM, n_sizes: int = CALIBRATION_POINTS + 1, min_sites: int = 6,
                        step: int | None = None) -> list[CalibrationPoint]:
     """Exact and raw d_eff of ``scenario.with_length(L)`` for the ``n_sizes`` largest L < target that fit.
 

@@ -19,10 +19,12 @@ import scipy.linalg
 
 from largeq.analysis.equilibrium_formulas import level_spacing_ratio
 from largeq.basis.blocks import Block, SymmetryGroup, symmetry_blocks, symmetry_group
+from largeq.constants import MAX_DENSE_DIM
 from largeq.model.symmetry import total_spin_squared
 from largeq.operators.pauli_operator import PauliOperator
 
-__all__ = ["SpinResolved", "spin_resolve", "spin_of", "resolved_level_ratio", "level_ratios_by_spin"]
+__all__ = ["SpinResolved", "spin_resolve", "spin_of", "resolved_level_ratio", "resolved_level_statistics",
+           "level_ratios_by_spin", "spin_squared_csr"]
 
 #: Levels closer than this (relative to max(1, |E|)) are treated as one eigenspace when S is assigned.
 SPIN_DEGENERACY_TOL = 1e-9
@@ -94,7 +96,7 @@ def level_ratios_by_spin(problem, blk, *, central_fraction: float = 0.5, min_lev
 
 
 def resolved_level_ratio(problem, *, which: str | dict = "trivial", central_fraction: float = 0.5,
-                         max_dim: int = 13000, group: SymmetryGroup | None = None,
+                         max_dim: int = MAX_DENSE_DIM, group: SymmetryGroup | None = None,
                          resolve_total_spin: bool | None = None):
     """<r> in one fully resolved block (default: the trivial character, k = 0 and all parities +1).
 
@@ -106,6 +108,17 @@ def resolved_level_ratio(problem, *, which: str | dict = "trivial", central_frac
     (SpacingRatio, Block, SymmetryGroup)
         The spacing ratio, the block (its label says which S when resolved) and the group.
     """
+    ratio, blk, group, _ = resolved_level_statistics(problem, which=which, central_fraction=central_fraction,
+                                                     max_dim=max_dim, group=group,
+                                                     resolve_total_spin=resolve_total_spin)
+    return ratio, blk, group
+
+
+def resolved_level_statistics(problem, *, which: str | dict = "trivial", central_fraction: float = 0.5,
+                              max_dim: int = MAX_DENSE_DIM, group: SymmetryGroup | None = None,
+                              resolve_total_spin: bool | None = None):
+    """As :func:`resolved_level_ratio`, plus {S: (SpacingRatio, levels)} for every (block, S) sub-block
+    with at least 10 levels (empty when S is not resolved)."""
     group = group or symmetry_group(problem)
     blocks = symmetry_blocks(problem, group=group, which=which)
     if not blocks:
@@ -115,15 +128,16 @@ def resolved_level_ratio(problem, *, which: str | dict = "trivial", central_frac
         raise ValueError(f"block {blk.label} has dimension {blk.dim:,} > max_dim = {max_dim:,}")
     if resolve_total_spin is None:
         resolve_total_spin = bool(problem.symmetries.get("total_spin", False))
+    per = {}
     if resolve_total_spin:
         per = level_ratios_by_spin(problem, blk, central_fraction=central_fraction, min_levels=10)
         if per:
             s, (ratio, n) = max(per.items(), key=lambda kv: kv[1][1])
             blk = Block(f"{blk.label}, total spin S = {s:g} ({n} levels)", blk.quantum_numbers, blk.q)
-            return ratio, blk, group
+            return ratio, blk, group, per
         # too few levels in every S: the block's <r> mixes independent S spectra (biased towards Poisson)
         blk = Block(f"{blk.label}, total spin NOT resolved (fewer than 10 levels per S; <r> biased low)",
                     blk.quantum_numbers, blk.q)
     h = problem.operator.to_csr()
     e = scipy.linalg.eigvalsh(blk.hamiltonian(h), check_finite=False)
-    return level_spacing_ratio(e, central_fraction=central_fraction), blk, group
+    return level_spacing_ratio(e, central_fraction=central_fraction), blk, group, per

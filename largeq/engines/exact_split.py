@@ -269,13 +269,15 @@ def quench_split(
         keep = np.flatnonzero(ids >= 0)
         ids_k = ids[keep]
         uniq, first, inv = np.unique(ids_k, return_index=True, return_inverse=True)
-        if uniq.size == keep.size:
+        if uniq.size == keep.size == v.shape[1]:
+            y = v  # every eigenvector its own occupied level: no copy
+        elif uniq.size == keep.size:
             y = v[:, keep]
         else:  # several eigenvectors of one level in this sector: sum their columns
             y = np.zeros((v.shape[0], uniq.size), v.dtype)
             np.add.at(y.T, inv, v[:, keep].T)
         del v
-        cols.append(np.ascontiguousarray(y))
+        cols.append(y)
         col_lev.append(uniq)
     col_pos = []
     for s in range(n_sec):

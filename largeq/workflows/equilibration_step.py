@@ -39,7 +39,12 @@ def equilibration_report(problem, times, survival, analyses, *, mode: str = "aut
         out["summary"]["note"] = "not requested (--equilibration off)"
         return out
     exact = None
-    if mode in ("exact", "auto"):
+    # no symmetry group of a chain has more than 4 L elements: a block is at least dim / (4 L) large
+    hopeless = mode == "auto" and dim > 4 * problem.n_sites * EXACT_AUTO_MAX_BLOCK
+    if hopeless:
+        out["summary"]["exact_note"] = (f"basis dimension {dim:,}: every symmetry block is larger than the automatic "
+                                        f"limit {EXACT_AUTO_MAX_BLOCK:,}")
+    elif mode in ("exact", "auto"):
         plan = exact_plan(problem)
         if mode == "exact" or plan.largest <= EXACT_AUTO_MAX_BLOCK:
             try:
@@ -76,6 +81,10 @@ def _from_exact(problem, ex, analyses, energy, out, rng) -> None:
             th = exact_thermal_values(problem, energy, psi=problem.initial_vector()[0])
             s["thermal"] = {"method": "exact (all symmetry blocks of the basis)", "beta": th.beta, "width": th.width,
                             "ensemble": th.ensemble}
+            if th.spin_weights:
+                s["thermal"]["by_total_spin"] = {
+                    f"{sv:g}": {"weight": w, "energy": th.spin_energies[sv], "beta": th.spin_betas[sv]}
+                    for sv, w in th.spin_weights.items()}
         except DenseLimitError as exc:
             s["thermal"] = {"method": "skipped", "note": str(exc)}
     elif problem.basis.dim <= ESTIMATE_MAX_DIM:
@@ -99,6 +108,9 @@ def _from_exact(problem, ex, analyses, energy, out, rng) -> None:
         }
         if th is not None:
             entry.update(canonical=th.canonical[name], microcanonical=th.microcanonical[name])
+            if getattr(th, "spin_weights", None):
+                entry.update(canonical_spins_mixed=th.canonical_mixed[name],
+                             microcanonical_spins_mixed=th.microcanonical_mixed[name])
         out["per_observable"][name] = entry
         rows.append((f"{name}: ⟨A⟩∞ (diagonal ensemble) vs window mean",
                      f"{o.equilibrium:.5g} vs {a.equilibrium:.5g} ± {a.equilibrium_err:.2g}", ""))

@@ -116,14 +116,19 @@ def fingerprint(scenario_text: str, settings: dict) -> str:
 
 
 def sector_note(problem: Problem) -> str:
-    """One sentence saying which Hilbert space the spectra and ensembles live in."""
+    """Which Hilbert space the spectra and ensembles live in, and which conserved quantity they leave out."""
+    from largeq.analysis.equilibration import conserved_left_out
+
     b = problem.basis
     if b.is_sector:
-        return (f"All densities and ensembles are those of the magnetization sector n_up = {b.up_spins} "
-                f"(sum of sigma^z = {2 * b.up_spins - b.n_sites}, dimension {b.dim:,}) that the initial state "
-                "lives in: the Hamiltonian conserves the magnetization, so the dynamics never leave it.")
-    return (f"All densities and ensembles are those of the full space (dimension {b.dim:,}): "
-            f"{problem.basis_reason}.")
+        out = (f"All densities and ensembles are those of the magnetization sector n_up = {b.up_spins} "
+               f"(sum of sigma^z = {2 * b.up_spins - b.n_sites}, dimension {b.dim:,}) that the initial state "
+               "lives in: the Hamiltonian conserves the magnetization, so the dynamics never leave it.")
+    else:
+        out = (f"All densities and ensembles are those of the full space (dimension {b.dim:,}): "
+               f"{problem.basis_reason}.")
+    left = conserved_left_out(problem)
+    return out + (f" Conserved quantity the ensembles leave out: {left}." if left else "")
 
 
 def vector_dtype(problem: Problem):
