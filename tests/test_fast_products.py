@@ -154,3 +154,24 @@ def test_block_product_argument_checks():
         op.fused_update_block(X + 0j, np.ones((b.dim, 2)))
     with pytest.raises(ValueError):
         op.fused_update_block(np.asfortranarray(np.ones((b.dim, 2))), np.ones((b.dim, 2)))
+
+
+@pytest.mark.parametrize("n", [1000, 70_000])
+def test_accumulate_pair_matches_numpy(n):
+    from largeq.vectors import accumulate_pair
+
+    rng = np.random.default_rng(n)
+    K = 5
+    outs0 = rng.standard_normal((K, n)) + 1j * rng.standard_normal((K, n))
+    u = rng.standard_normal(n) + 1j * rng.standard_normal(n)
+    v = rng.standard_normal(n) + 1j * rng.standard_normal(n)
+    a = rng.standard_normal(K) + 1j * rng.standard_normal(K)
+    b = rng.standard_normal(K) - 1j * rng.standard_normal(K)
+    outs = outs0.copy()
+    accumulate_pair(outs, a, u, b, v)
+    np.testing.assert_allclose(outs, outs0 + a[:, None] * u + b[:, None] * v, atol=1e-13)
+    outs[:] = np.nan
+    accumulate_pair(outs, a, u, b, v, overwrite=True)
+    np.testing.assert_allclose(outs, a[:, None] * u + b[:, None] * v, atol=1e-13)
+    with pytest.raises(ValueError):
+        accumulate_pair(outs[:, ::2], a, u[::2], b, v[::2])
