@@ -250,7 +250,73 @@ def csr_fill_kernel(n_lo, sector, up_spins, offset, lo_rank, states, gx, gptr, g
 # sweep.  The high-site and straddling terms then act on the tile's output blocks in place, with
 # the index work shared by the m columns.
 
-TILE_WIDTH = 16
+TILE_WIDTH = 16  # lanes of a tile row; _low_row is written out for 16
+
+# Indexing note: numba wraps negative indices around, which turns ``x[base + i]`` with an
+# unknown ``base`` into a select per element and stops vectorization.  Inside the hot loops
+# every array is a view indexed by loop counters only (``xs = x[so:so + size]``; ``xs[i]``),
+# and rows picked by a table entry are a separate leading index (``Xt[col, w]``), so the
+# wrap test is done once per row and the loops over i and w are plain strided loads.
+
+
+@njit(inline="always", cache=True)
+def _low_row(yr, Xt, lo_ptr, lo_col, lo_val, pos, alpha):
+    """yr += alpha * sum_e lo_val[e] * Xt[lo_col[e]] over row pos (16 lanes, TILE_WIDTH).
+
+    The 16 running sums are written out as scalars so that they stay in registers: with the
+    sums in ``yr`` itself, every non-zero would wait for the previous one's store.
+    """
+    a0 = yr[0]
+    a1 = yr[1]
+    a2 = yr[2]
+    a3 = yr[3]
+    a4 = yr[4]
+    a5 = yr[5]
+    a6 = yr[6]
+    a7 = yr[7]
+    a8 = yr[8]
+    a9 = yr[9]
+    a10 = yr[10]
+    a11 = yr[11]
+    a12 = yr[12]
+    a13 = yr[13]
+    a14 = yr[14]
+    a15 = yr[15]
+    for e in range(lo_ptr[pos], lo_ptr[pos + 1]):
+        v = alpha * lo_val[e]
+        xc = Xt[lo_col[e]]
+        a0 += v * xc[0]
+        a1 += v * xc[1]
+        a2 += v * xc[2]
+        a3 += v * xc[3]
+        a4 += v * xc[4]
+        a5 += v * xc[5]
+        a6 += v * xc[6]
+        a7 += v * xc[7]
+        a8 += v * xc[8]
+        a9 += v * xc[9]
+        a10 += v * xc[10]
+        a11 += v * xc[11]
+        a12 += v * xc[12]
+        a13 += v * xc[13]
+        a14 += v * xc[14]
+        a15 += v * xc[15]
+    yr[0] = a0
+    yr[1] = a1
+    yr[2] = a2
+    yr[3] = a3
+    yr[4] = a4
+    yr[5] = a5
+    yr[6] = a6
+    yr[7] = a7
+    yr[8] = a8
+    yr[9] = a9
+    yr[10] = a10
+    yr[11] = a11
+    yr[12] = a12
+    yr[13] = a13
+    yr[14] = a14
+    yr[15] = a15
 
 
 def _make_tiled_kernel(m):
@@ -260,11 +326,11 @@ def _make_tiled_kernel(m):
                      lo_ptr, lo_col, lo_val,
                      hi_ptr, hi_src, hi_val,
                      g_xh, g_zhi, g_ptr, g_vptr, seg_ptr, seg_k, seg_rank, seg_pat, g_val,
-                     tiles, scratch, xf, yf, alpha, beta, gamma):
-        """yf <- alpha * (A x) + beta * x + gamma * y on m real columns (flat row-major, real A).
+                     tiles, scratch, x, y, alpha, beta, gamma):
+        """y <- alpha * (A x) + beta * x + gamma * y on m real columns (x, y: (dim, m), real A).
 
         ``tiles[i]``: the high parts of tile i's blocks (all of one low class; -1 pads),
-        ``tiles.shape[1] * m == TILE_WIDTH``; ``scratch``: (threads, 2, max class size * TILE_WIDTH).
+        ``tiles.shape[1] * m == TILE_WIDTH``; ``scratch``: (threads, 2, max class size, TILE_WIDTH).
         """
         W = TILE_WIDTH
         T = W // m
@@ -273,15 +339,13 @@ def _make_tiled_kernel(m):
         n_classes = lo_start.shape[0] - 1
         nd = 2 * n_lo + 1
         n_tiles = tiles.shape[0]
+        # pass 1: diagonal and low-site terms, tile by tile
         for ti in prange(n_tiles):
             tid = numba.get_thread_id()
             Xt = scratch[tid, 0]
             Yt = scratch[tid, 1]
             cd_base = np.empty((T, max(n_cd, 1)), np.int64)
             dh = np.zeros(T)
-            g_so = np.empty(n_g, np.int64)
-            g_d = np.empty(n_g, np.int64)
-            g_base = np.empty(n_g, np.int64)
             n = lo_up[tiles[ti, 0]]
             s0 = lo_start[n]
             size = lo_start[n + 1] - s0
@@ -291,53 +355,50 @@ def _make_tiled_kernel(m):
                 if hi < 0:
                     for k in range(size):
                         for j in range(m):
-                            Xt[k * W + t * m + j] = 0.0
+                            Xt[k, t * m + j] = 0.0
                     for c in range(n_cd):
                         cd_base[t, c] = cd_vptr[c]
                     continue
-                src = offset[hi] * m
+                off = offset[hi]
+                xs = x[off:off + size]
                 for k in range(size):
                     for j in range(m):
-                        Xt[k * W + t * m + j] = xf[src + k * m + j]
+                        Xt[k, t * m + j] = xs[k, j]
                 dh[t] = diag_hi[hi]
                 for c in range(n_cd):
                     q0 = cd_ptr[c]
                     q1 = cd_ptr[c + 1]
                     cd_base[t, c] = cd_vptr[c] + (_pattern(cd_zhi, q0, q1, hi) << (q1 - q0))
-            # diagonal and low-site terms on the whole tile
             for k in range(size):
                 pos = s0 + k
                 dl = diag_lo[pos]
-                row = k * W
+                yr = Yt[k]
+                xr = Xt[k]
                 for t in range(T):
                     d = dh[t] + dl
                     for c in range(n_cd):
                         d += cd_val[cd_base[t, c] + cd_pat[c, pos]]
                     f = beta + alpha * d
                     for j in range(m):
-                        Yt[row + t * m + j] = f * Xt[row + t * m + j]
-                for e in range(lo_ptr[pos], lo_ptr[pos + 1]):
-                    v = alpha * lo_val[e]
-                    col = lo_col[e] * W
-                    for w in range(W):
-                        Yt[row + w] += v * Xt[col + w]
+                        yr[t * m + j] = f * xr[t * m + j]
+                _low_row(yr, Xt, lo_ptr, lo_col, lo_val, pos, alpha)
             # scatter
             for t in range(T):
                 hi = tiles[ti, t]
                 if hi < 0:
                     continue
                 off = offset[hi]
-                dst = off * m
+                ys = y[off:off + size]
                 if gamma == 0:
                     for k in range(size):
                         for j in range(m):
-                            yf[dst + k * m + j] = Yt[k * W + t * m + j]
+                            ys[k, j] = Yt[k, t * m + j]
                 else:
                     for k in range(size):
                         for j in range(m):
-                            yf[dst + k * m + j] = gamma * yf[dst + k * m + j] + Yt[k * W + t * m + j]
-        # the high-site and straddling terms, block by block in the order of the vector (the
-        # input blocks they read then follow each other in memory: hardware prefetch keeps up)
+                            ys[k, j] = gamma * ys[k, j] + Yt[k, t * m + j]
+        # pass 2: the high-site and straddling terms, block by block in the order of the vector
+        # (the input blocks they read follow each other in memory: hardware prefetch keeps up)
         n_hi_states = offset.shape[0]
         n_chunks = min(n_hi_states, 256)
         for ch in prange(n_chunks):
@@ -351,12 +412,14 @@ def _make_tiled_kernel(m):
                     continue
                 n = lo_up[hi]
                 size = lo_start[n + 1] - lo_start[n]
-                dst = off * m
+                ys = y[off:off + size]
                 for e in range(hi_ptr[hi], hi_ptr[hi + 1]):
-                    so = offset[hi_src[e]] * m
+                    so = offset[hi_src[e]]
+                    xs = x[so:so + size]
                     c = alpha * hi_val[e]
-                    for i in range(size * m):
-                        yf[dst + i] += c * xf[so + i]
+                    for k in range(size):
+                        for j in range(m):
+                            ys[k, j] += c * xs[k, j]
                 if n_g == 0:
                     continue
                 _block_setup(hi, True, offset, lo_up, cd_zhi, cd_ptr, cd_vptr, g_xh, g_zhi, g_ptr, g_vptr,
@@ -369,12 +432,13 @@ def _make_tiled_kernel(m):
                     if q < (g * n_classes + n) * nd or q >= (g * n_classes + n + 1) * nd:
                         continue
                     gb = g_base[g]
+                    xs = x[so:]
                     for e in range(seg_ptr[q], seg_ptr[q + 1]):
                         c = alpha * g_val[gb + seg_pat[e]]
-                        a = dst + seg_k[e] * m
-                        b = (so + seg_rank[e]) * m
+                        yr = ys[seg_k[e]]
+                        xr = xs[seg_rank[e]]
                         for j in range(m):
-                            yf[a + j] += c * xf[b + j]
+                            yr[j] += c * xr[j]
 
     return tiled_kernel
 

@@ -282,17 +282,18 @@ class PauliOperator(LinearOperator):
         # (hi ^ mask) were read shortly before, and are still in cache
         tiles = np.ascontiguousarray(tiles[np.argsort(tiles[:, 0], kind="stable")])
         max_size = int(np.max(np.diff(b.lo_start))) if b.lo_start.size > 1 else 0
-        scratch = np.empty((numba.get_num_threads(), 2, max_size * kernels.TILE_WIDTH))
+        scratch = np.empty((numba.get_num_threads(), 2, max(max_size, 1), kernels.TILE_WIDTH))
         self._tile_cache[key] = (tiles, scratch)
         return tiles, scratch
 
     def _tiled(self, xf, yf, m, scal):
+        """The tiled product on m real columns; xf, yf: flat float64 views of (dim, m) arrays."""
         b = self.basis
         tiles, scratch = self._tile_args(m)
         kernels.tiled_kernels[m](b.n_lo, b.block_offset, b.block_lo_up, b.lo_start,
-                             self._diag[0], self._diag[1], *self._cross_diag,
-                             *self._lo, *self._hi, *self._cross,
-                             tiles, scratch, xf, yf, *scal)
+                                 self._diag[0], self._diag[1], *self._cross_diag,
+                                 *self._lo, *self._hi, *self._cross,
+                                 tiles, scratch, xf.reshape(-1, m), yf.reshape(-1, m), *scal)
 
     def fused_update(self, x, y, alpha=1.0, beta=0.0, gamma=0.0):
         """In place ``y <- alpha * (A x) + beta * x + gamma * y``; x and y distinct 1-d arrays."""
