@@ -326,8 +326,9 @@ def _make_tiled_kernel(m):
                      lo_ptr, lo_col, lo_val,
                      hi_ptr, hi_src, hi_val,
                      g_xh, g_zhi, g_ptr, g_vptr, seg_ptr, seg_k, seg_rank, seg_pat, g_val,
-                     tiles, scratch, x, y, alpha, beta, gamma):
-        """y <- alpha * (A x) + beta * x + gamma * y on m real columns (x, y: (dim, m), real A).
+                     tiles, scratch, x, y, xf, yf, alpha, beta, gamma):
+        """y <- alpha * (A x) + beta * x + gamma * y on m real columns (x, y: (dim, m), real A;
+        xf, yf: the same memory as flat arrays).
 
         ``tiles[i]``: the high parts of tile i's blocks (all of one low class; -1 pads),
         ``tiles.shape[1] * m == TILE_WIDTH``; ``scratch``: (threads, 2, max class size, TILE_WIDTH).
@@ -349,26 +350,32 @@ def _make_tiled_kernel(m):
             n = lo_up[tiles[ti, 0]]
             s0 = lo_start[n]
             size = lo_start[n + 1] - s0
-            # gather the tile, transposed
+            # gather the tile, transposed (row k of the tile takes entry k of every block)
+            offs = np.empty(T, np.int64)
             for t in range(T):
                 hi = tiles[ti, t]
                 if hi < 0:
-                    for k in range(size):
-                        for j in range(m):
-                            Xt[k, t * m + j] = 0.0
+                    offs[t] = -1
                     for c in range(n_cd):
                         cd_base[t, c] = cd_vptr[c]
                     continue
-                off = offset[hi]
-                xs = x[off:off + size]
-                for k in range(size):
-                    for j in range(m):
-                        Xt[k, t * m + j] = xs[k, j]
+                offs[t] = offset[hi] * m
                 dh[t] = diag_hi[hi]
                 for c in range(n_cd):
                     q0 = cd_ptr[c]
                     q1 = cd_ptr[c + 1]
                     cd_base[t, c] = cd_vptr[c] + (_pattern(cd_zhi, q0, q1, hi) << (q1 - q0))
+            for k in range(size):
+                xr = Xt[k]
+                for t in range(T):
+                    o = offs[t]
+                    if o < 0:
+                        for j in range(m):
+                            xr[t * m + j] = 0.0
+                    else:
+                        xs = xf[o + k * m:o + k * m + m]
+                        for j in range(m):
+                            xr[t * m + j] = xs[j]
             for k in range(size):
                 pos = s0 + k
                 dl = diag_lo[pos]
@@ -383,20 +390,19 @@ def _make_tiled_kernel(m):
                         yr[t * m + j] = f * xr[t * m + j]
                 _low_row(yr, Xt, lo_ptr, lo_col, lo_val, pos, alpha)
             # scatter
-            for t in range(T):
-                hi = tiles[ti, t]
-                if hi < 0:
-                    continue
-                off = offset[hi]
-                ys = y[off:off + size]
-                if gamma == 0:
-                    for k in range(size):
+            for k in range(size):
+                yr = Yt[k]
+                for t in range(T):
+                    o = offs[t]
+                    if o < 0:
+                        continue
+                    ys = yf[o + k * m:o + k * m + m]
+                    if gamma == 0:
                         for j in range(m):
-                            ys[k, j] = Yt[k, t * m + j]
-                else:
-                    for k in range(size):
+                            ys[j] = yr[t * m + j]
+                    else:
                         for j in range(m):
-                            ys[k, j] = gamma * ys[k, j] + Yt[k, t * m + j]
+                            ys[j] = gamma * ys[j] + yr[t * m + j]
         # pass 2: the high-site and straddling terms, block by block in the order of the vector
         # (the input blocks they read follow each other in memory: hardware prefetch keeps up)
         n_hi_states = offset.shape[0]
@@ -413,13 +419,13 @@ def _make_tiled_kernel(m):
                 n = lo_up[hi]
                 size = lo_start[n + 1] - lo_start[n]
                 ys = y[off:off + size]
+                yflat = yf[off * m:(off + size) * m]
                 for e in range(hi_ptr[hi], hi_ptr[hi + 1]):
                     so = offset[hi_src[e]]
-                    xs = x[so:so + size]
+                    xflat = xf[so * m:(so + size) * m]
                     c = alpha * hi_val[e]
-                    for k in range(size):
-                        for j in range(m):
-                            ys[k, j] += c * xs[k, j]
+                    for i in range(size * m):
+                        yflat[i] += c * xflat[i]
                 if n_g == 0:
                     continue
                 _block_setup(hi, True, offset, lo_up, cd_zhi, cd_ptr, cd_vptr, g_xh, g_zhi, g_ptr, g_vptr,

@@ -293,7 +293,7 @@ class PauliOperator(LinearOperator):
         kernels.tiled_kernels[m](b.n_lo, b.block_offset, b.block_lo_up, b.lo_start,
                                  self._diag[0], self._diag[1], *self._cross_diag,
                                  *self._lo, *self._hi, *self._cross,
-                                 tiles, scratch, xf.reshape(-1, m), yf.reshape(-1, m), *scal)
+                                 tiles, scratch, xf.reshape(-1, m), yf.reshape(-1, m), xf, yf, *scal)
 
     def fused_update(self, x, y, alpha=1.0, beta=0.0, gamma=0.0):
         """In place ``y <- alpha * (A x) + beta * x + gamma * y``; x and y distinct 1-d arrays."""
