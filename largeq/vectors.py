@@ -16,7 +16,7 @@ import numba
 import numpy as np
 from numba import njit, prange
 
-__all__ = ["PARALLEL_MIN", "threads_for", "vdot", "norm", "axpy", "scale", "accumulate_pair"]
+__all__ = ["PARALLEL_MIN", "threads_for", "vdot", "norm", "axpy", "scale", "accumulate_pair", "column_vdots"]
 
 #: vectors shorter than this are processed by one thread (fork/join costs more than it saves)
 PARALLEL_MIN = 1 << 16
@@ -45,6 +45,17 @@ def _vdot_chunks(x, y, out):
         for i in range(c * _CHUNK, min(n, (c + 1) * _CHUNK)):
             s += np.conj(x[i]) * y[i]
         out[c] = s
+
+
+@njit(parallel=True, cache=True)
+def _column_vdots_chunks(a, b, out):
+    n = a.shape[0]
+    for c in prange(out.shape[0]):
+        for i in range(c * _CHUNK, min(n, (c + 1) * _CHUNK)):
+            ar = a[i]
+            br = b[i]
+            for j in range(a.shape[1]):
+                out[c, j] += np.conj(ar[j]) * br[j]
 
 
 @njit(parallel=True, cache=True)
@@ -139,3 +150,19 @@ def accumulate_pair(outs: np.ndarray, a, u: np.ndarray, b, v: np.ndarray, overwr
     with threads_for(n):
         _accumulate_pair(outs, a, u, b, v, bool(overwrite))
     return outs
+
+
+def column_vdots(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """``sum_i conj(a[i, j]) b[i, j]`` for every column j of two (n, R) arrays, in one pass.
+
+    Complex results of shape (R,); summed in fixed chunks like :func:`vdot` (independent of the
+    thread count), so column j equals ``vdot(a[:, j], b[:, j])`` up to rounding.
+    """
+    if a.shape != b.shape or a.ndim != 2:
+        raise ValueError(f"column_vdots: need two 2-d arrays of equal shape, got {a.shape} and {b.shape}")
+    a = np.ascontiguousarray(a)
+    b = np.ascontiguousarray(b)
+    out = np.zeros(((a.shape[0] + _CHUNK - 1) // _CHUNK, a.shape[1]), np.complex128)
+    with threads_for(a.size):
+        _column_vdots_chunks(a, b, out)
+    return out.sum(axis=0)

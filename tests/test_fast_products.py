@@ -175,3 +175,50 @@ def test_accumulate_pair_matches_numpy(n):
     np.testing.assert_allclose(outs, a[:, None] * u + b[:, None] * v, atol=1e-13)
     with pytest.raises(ValueError):
         accumulate_pair(outs[:, ::2], a, u[::2], b, v[::2])
+
+
+@pytest.mark.parametrize("dtype", [float, complex])
+def test_block_chebyshev_moments_equal_one_at_a_time(dtype):
+    """Moments of R vectors at once against the one-vector recursion and against dense numpy
+    Chebyshev polynomials T_n(Ht) = cos(n arccos Ht) on the eigenvalues (Weisse et al.,
+    Rev. Mod. Phys. 78, 275 (2006), Eq. (16))."""
+    from largeq.engines.kpm import chebyshev_moments, chebyshev_moments_block, chebyshev_scale
+
+    L = 10
+    b = magnetization_basis(L, 5)
+    op = PauliOperator(xxz_ring(L), b)
+    H = op.to_dense()
+    w, U = np.linalg.eigh(H)
+    bounds = (w[0] - 0.1, w[-1] + 0.1)
+    rng = np.random.default_rng(11)
+    R = 4
+    V = rng.standard_normal((b.dim, R))
+    if dtype is complex:
+        V = V + 1j * rng.standard_normal((b.dim, R))
+    N = 40
+    mu = chebyshev_moments_block(op, V, N, bounds)
+    a, c = chebyshev_scale(bounds)
+    theta = np.arccos((w - c) / a)
+    for r in range(R):
+        np.testing.assert_allclose(mu[r], chebyshev_moments(op, V[:, r].copy(), N, bounds), atol=1e-9)
+        weights = np.abs(U.conj().T @ V[:, r]) ** 2
+        ref = np.array([np.sum(weights * np.cos(n * theta)) for n in range(N)])
+        np.testing.assert_allclose(mu[r], ref, atol=1e-8 * np.sum(weights))
+
+
+def test_density_of_states_same_with_vectors_per_pass():
+    from largeq.engines.kpm import density_of_states
+
+    L = 12
+    b = magnetization_basis(L, 6)
+    op = PauliOperator(xxz_ring(L), b)
+    bounds = (-6.0, 6.0)
+    one = density_of_states(op, 64, bounds, 5, np.random.default_rng(2))
+    seen = []
+    blk = density_of_states(op, 64, bounds, 5, np.random.default_rng(2), vectors_per_pass=2,
+                            on_vector=lambda i, m: seen.append(i))
+    assert seen == [0, 1, 2, 3, 4]
+    np.testing.assert_allclose(blk.vector_moments, one.vector_moments, atol=1e-8 * b.dim)
+    np.testing.assert_allclose(blk.density, one.density, rtol=1e-9, atol=1e-12)
+    with pytest.raises(ValueError):
+        density_of_states(op, 64, bounds, 5, np.random.default_rng(2), vectors_per_pass=0)
