@@ -438,13 +438,13 @@ def _make_tiled_kernel(m):
                     if q < (g * n_classes + n) * nd or q >= (g * n_classes + n + 1) * nd:
                         continue
                     gb = g_base[g]
-                    xs = x[so:]
+                    xs = xf[so * m:]
                     for e in range(seg_ptr[q], seg_ptr[q + 1]):
                         c = alpha * g_val[gb + seg_pat[e]]
-                        yr = ys[seg_k[e]]
-                        xr = xs[seg_rank[e]]
+                        a = seg_k[e] * m
+                        r = seg_rank[e] * m
                         for j in range(m):
-                            yr[j] += c * xr[j]
+                            yflat[a + j] += c * xs[r + j]
 
     return tiled_kernel
 
