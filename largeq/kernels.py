@@ -259,7 +259,7 @@ TILE_WIDTH = 16  # lanes of a tile row; _low_row is written out for 16
 # wrap test is done once per row and the loops over i and w are plain strided loads.
 
 
-@njit(inline="always", cache=True)
+@njit(inline="always", cache=True, fastmath={"contract"})
 def _low_row(yr, Xt, lo_ptr, lo_col, lo_val, pos, alpha):
     """yr += alpha * sum_e lo_val[e] * Xt[lo_col[e]] over row pos (16 lanes, TILE_WIDTH).
 
@@ -320,7 +320,7 @@ def _low_row(yr, Xt, lo_ptr, lo_col, lo_val, pos, alpha):
 
 
 def _make_tiled_kernel(m):
-    @njit(parallel=True, cache=True)
+    @njit(parallel=True, cache=True, fastmath={"contract"})
     def tiled_kernel(n_lo, offset, lo_up, lo_start,
                      diag_lo, diag_hi, cd_zhi, cd_ptr, cd_vptr, cd_pat, cd_val,
                      lo_ptr, lo_col, lo_val,
