@@ -26,6 +26,7 @@ def _zsign(z, b):
 
 
 _CHUNK = 6  # strings per sign-pattern table (table size 4**_CHUNK)
+_TILE_SCRATCH_MAX = 16 * 2**20  # bytes of one tile scratch array (per thread, two of them)
 
 
 def _lo_pattern(zlo: np.ndarray, states: np.ndarray) -> np.ndarray:
@@ -115,6 +116,10 @@ class PauliOperator(LinearOperator):
         super().__init__(dtype=cdtype, shape=(basis.dim, basis.dim))
         self._tile_cache = {}
         self._build(cdtype)
+        # the tiled product (real operators) holds two (largest block, TILE_WIDTH) scratch arrays
+        # per thread; bases split with very large blocks keep the block-by-block kernel
+        max_block = int(np.max(np.diff(basis.lo_start))) if basis.lo_start.size > 1 else 0
+        self._tiling_ok = real and max_block * kernels.TILE_WIDTH * 8 <= _TILE_SCRATCH_MAX
 
     # ------------------------------------------------------------------ tables
     def _build(self, cdtype):
@@ -299,7 +304,7 @@ class PauliOperator(LinearOperator):
         """In place ``y <- alpha * (A x) + beta * x + gamma * y``; x and y distinct 1-d arrays."""
         x, scal = fused_arguments(self.shape[0], self.coeff_dtype, x, y, alpha, beta, gamma)
         with threads_for(self.shape[0]):
-            if self.coeff_dtype == np.float64 and all(np.imag(s) == 0 for s in scal):
+            if self._tiling_ok and all(np.imag(s) == 0 for s in scal):
                 m = 2 if np.iscomplexobj(y) else 1
                 self._tiled(x.view(np.float64), y.view(np.float64), m, [float(np.real(s)) for s in scal])
             else:
@@ -328,7 +333,7 @@ class PauliOperator(LinearOperator):
             X = X.astype(need)
         m = R * (2 if np.iscomplexobj(Y) else 1)
         real_scal = all(np.imag(s) == 0 for s in (alpha, beta, gamma))
-        if self.coeff_dtype == np.float64 and real_scal and kernels.TILE_WIDTH % m == 0:
+        if self._tiling_ok and real_scal and kernels.TILE_WIDTH % m == 0:
             scal = [float(np.real(s)) for s in (alpha, beta, gamma)]
             with threads_for(n):
                 self._tiled(X.reshape(-1).view(np.float64), Y.reshape(-1).view(np.float64), m, scal)

@@ -222,3 +222,22 @@ def test_density_of_states_same_with_vectors_per_pass():
     np.testing.assert_allclose(blk.density, one.density, rtol=1e-9, atol=1e-12)
     with pytest.raises(ValueError):
         density_of_states(op, 64, bounds, 5, np.random.default_rng(2), vectors_per_pass=0)
+
+
+def test_bases_with_huge_blocks_use_the_block_kernel():
+    """A split with one block of 2^18 states would need 64 MiB of tile scratch: the operator
+    falls back to the block-by-block kernel, with the same result."""
+    L = 18
+    b = full_basis(L, n_lo=L)
+    op = PauliOperator(xxz_ring(L), b)
+    assert not op._tiling_ok
+    assert PauliOperator(xxz_ring(L), full_basis(L))._tiling_ok
+    rng = np.random.default_rng(0)
+    x = rng.standard_normal(b.dim) + 1j * rng.standard_normal(b.dim)
+    y = np.empty_like(x)
+    op.fused_update(x, y)
+    np.testing.assert_allclose(y, op.to_csr() @ x, atol=1e-12)
+    X = rng.standard_normal((b.dim, 2))
+    Y = np.empty_like(X)
+    op.fused_update_block(X, Y)
+    np.testing.assert_allclose(Y, op.to_csr() @ X, atol=1e-12)
