@@ -31,15 +31,16 @@ from typing import Callable
 import numpy as np
 import scipy.fft
 
-from largeq.operators.vectors import vdot
 from largeq.engines.chebyshev import apply_chebyshev_series, check_vector, chebyshev_scale
 from largeq.engines.random_vectors import child_generators, random_state
 from largeq.operators.linalg import apply_into, fused_update, result_dtype
+from largeq.operators.vectors import column_vdots, vdot
 
 __all__ = [
     "SpectralDensity",
     "chebyshev_scale",
     "chebyshev_moments",
+    "chebyshev_moments_block",
     "jackson_kernel",
     "lorentz_kernel",
     "kernel_factors",
@@ -102,6 +103,57 @@ def chebyshev_moments(op, v: np.ndarray, n_moments: int, bounds, *, eps: float =
             break
         fused_update(op, cur, prev, 2.0 / a, -2.0 * b / a, -1.0)  # prev <- phi_{n+1}
         mu[2 * n + 1] = 2.0 * vdot(prev, cur).real - mu1
+        prev, cur = cur, prev
+        n += 1
+    return mu
+
+
+def _block_update(op, X, Y, alpha, beta, gamma):
+    """Y <- alpha * (op X) + beta * X + gamma * Y for the columns of (D, R) arrays."""
+    method = getattr(op, "fused_update_block", None)
+    if method is not None:
+        method(X, Y, alpha, beta, gamma)
+        return Y
+    for j in range(X.shape[1]):
+        yj = np.ascontiguousarray(Y[:, j])
+        fused_update(op, np.ascontiguousarray(X[:, j]), yj, alpha, beta, gamma)
+        Y[:, j] = yj
+    return Y
+
+
+def chebyshev_moments_block(op, V: np.ndarray, n_moments: int, bounds, *, eps: float = 0.01) -> np.ndarray:
+    """Chebyshev moments of R vectors at once: row r equals ``chebyshev_moments(op, V[:, r], ...)``.
+
+    ``V``: (D, R) array, one vector per column (not modified).  The recursion runs on all
+    columns together, so every product reads the operator's tables once per R vectors
+    (``PauliOperator.fused_update_block``; other operators are applied column by column).
+    Holds 2 (D, R) arrays besides ``V``.  Returns an array of shape (R, n_moments).
+    """
+    n_moments = _check_n_moments(n_moments)
+    V = np.asarray(V)
+    if V.ndim != 2:
+        raise ValueError(f"V must be a 2-d array (one vector per column), got shape {V.shape}")
+    shape = getattr(op, "shape", None)
+    if shape is not None and (shape[0] != shape[1] or shape[1] != V.shape[0]):
+        raise ValueError(f"V has {V.shape[0]} rows but the operator has shape {shape}")
+    a, b = chebyshev_scale(bounds, eps)
+    dtype = result_dtype(op, V)
+    R = V.shape[1]
+    mu = np.empty((R, n_moments))
+    prev = np.array(V, dtype=dtype, order="C", copy=True)  # phi_0
+    cur = np.empty_like(prev)
+    _block_update(op, prev, cur, 1.0 / a, -b / a, 0.0)  # phi_1 = Ht phi_0
+    mu0 = column_vdots(prev, prev).real
+    mu1 = column_vdots(prev, cur).real
+    mu[:, 0] = mu0
+    mu[:, 1] = mu1
+    n = 1
+    while 2 * n < n_moments:
+        mu[:, 2 * n] = 2.0 * column_vdots(cur, cur).real - mu0
+        if 2 * n + 1 >= n_moments:
+            break
+        _block_update(op, cur, prev, 2.0 / a, -2.0 * b / a, -1.0)  # prev <- phi_{n+1}
+        mu[:, 2 * n + 1] = 2.0 * column_vdots(prev, cur).real - mu1
         prev, cur = cur, prev
         n += 1
     return mu
@@ -355,13 +407,14 @@ def density_of_states(
     done_moments: np.ndarray | None = None,
     vector_kind: str = "gaussian",
     eps: float = 0.01,
+    vectors_per_pass: int = 1,
 ) -> SpectralDensity:
     """Density of states ``rho(E) = sum_m delta(E - E_m)`` by a stochastic trace (integrates to D).
 
     ``mu_n ~ (1/R) sum_r <r|T_n(Ht)|r>`` with each random vector scaled to ``||r||^2 = D``
     (complex or real Gaussian, or random phases; ``dtype=float`` for real Hamiltonians).
     Error bars: standard error over the R vectors (std / sqrt(R)) of the per-vector densities,
-    which shrinks like 1/sqrt(R D) relative to D.  Holds 3 full-size vectors.
+    which shrinks like 1/sqrt(R D) relative to D.  Holds 3 full-size vectors (3 per vector of a pass with ``vectors_per_pass > 1``).
 
     Vector ``i`` is drawn from child ``i`` of ``rng`` (:func:`~largeq.engines.random_vectors.child_generators`, the caller's generator is not advanced), so a run resumed with
     ``done_moments`` (the first k rows of an earlier ``vector_moments``) and a generator seeded
@@ -379,6 +432,9 @@ def density_of_states(
     on_vector : callable(i, moments_i), called after each newly computed vector (checkpoint)
     done_moments : ndarray (k, n_moments), moments of vectors 0..k-1 already computed
     vector_kind : 'gaussian' or 'phase' (random phases; random signs if dtype is real)
+    vectors_per_pass : int >= 1, random vectors whose recursions run together
+        (:func:`chebyshev_moments_block`); holds ``3 * vectors_per_pass`` full-size vectors.
+        The moments are those of the one-at-a-time run up to rounding.
     """
 
     n_moments = _check_n_moments(n_moments)
@@ -403,14 +459,31 @@ def density_of_states(
             )
         start = done_moments.shape[0]
         moments[:start] = done_moments
+    if int(vectors_per_pass) != vectors_per_pass or vectors_per_pass < 1:
+        raise ValueError(f"vectors_per_pass must be an integer >= 1, got {vectors_per_pass!r}")
     children = child_generators(rng, int(n_vectors))
     r = None
-    for i in range(start, int(n_vectors)):
-        r = random_state(dim, children[i], kind=vector_kind, dtype=dtype, out=r)
-        r *= np.sqrt(dim)
-        moments[i] = chebyshev_moments(op, r, n_moments, bounds, eps=eps)
-        if on_vector is not None:
-            on_vector(i, moments[i].copy())
+    if vectors_per_pass == 1:
+        for i in range(start, int(n_vectors)):
+            r = random_state(dim, children[i], kind=vector_kind, dtype=dtype, out=r)
+            r *= np.sqrt(dim)
+            moments[i] = chebyshev_moments(op, r, n_moments, bounds, eps=eps)
+            if on_vector is not None:
+                on_vector(i, moments[i].copy())
+    else:
+        for i0 in range(start, int(n_vectors), int(vectors_per_pass)):
+            i1 = min(int(n_vectors), i0 + int(vectors_per_pass))
+            if r is None or r.shape[1] != i1 - i0:
+                r = np.empty((dim, i1 - i0), dtype=np.dtype(dtype))
+            col = np.empty(dim, dtype=np.dtype(dtype))
+            for i in range(i0, i1):
+                r[:, i - i0] = random_state(dim, children[i], kind=vector_kind, dtype=dtype, out=col)
+            del col
+            r *= np.sqrt(dim)
+            moments[i0:i1] = chebyshev_moments_block(op, r, n_moments, bounds, eps=eps)
+            if on_vector is not None:
+                for i in range(i0, i1):
+                    on_vector(i, moments[i].copy())
     del r
     R = int(n_vectors)
     mu = moments.mean(axis=0)

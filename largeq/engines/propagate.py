@@ -31,8 +31,8 @@ from scipy.linalg import eigh_tridiagonal
 from scipy.special import gammaln, jv
 
 from largeq.engines.bounds import SpectralBounds, check_operator, spectral_bounds
-from largeq.operators.vectors import axpy, norm, vdot
 from largeq.operators.linalg import fused_update
+from largeq.operators.vectors import accumulate_pair, axpy, norm, vdot
 
 __all__ = [
     "EvolutionStats",
@@ -169,7 +169,11 @@ def chebyshev_coefficients(dt: float, bounds: SpectralBounds, tol: float = 1e-10
 def _chebyshev_block(op, psi, dts, bounds, tol, outs, work_a, work_b):
     """outs[k] <- exp(-iH dts[k]) psi for all k, sharing one recursion.
 
-    Holds psi, two work vectors and len(dts) result vectors.  Returns (matvecs, order, err).
+    ``outs``: a C-contiguous (len(dts), N) array (one row per output time).  Holds psi, two work
+    vectors and the rows of ``outs``.  The rows are updated every second product with two
+    Chebyshev vectors at once (phi_{n-1} and phi_n are both held right after the product that
+    makes phi_n), so each row is read and written once per two products.
+    Returns (matvecs, order, err).
     """
     a, b = bounds.half_width, bounds.center
     coeffs, errs = [], []
@@ -178,25 +182,27 @@ def _chebyshev_block(op, psi, dts, bounds, tol, outs, work_a, work_b):
         coeffs.append(c)
         errs.append(e)
     order = max(len(c) for c in coeffs)
-    for c, out in zip(coeffs, outs):
-        np.multiply(psi, c[0], out=out)
+    cmat = np.zeros((len(coeffs), order + 1), np.complex128)  # padded with zeros
+    for k, c in enumerate(coeffs):
+        cmat[k, :len(c)] = c
     if order == 1:
+        for k in range(len(coeffs)):
+            np.multiply(psi, cmat[k, 0], out=outs[k])
         return 0, order, max(errs)
     # phi_1 = Ht psi
     fused_update(op, psi, work_b, 1.0 / a, -b / a, 0.0)
-    for c, out in zip(coeffs, outs):
-        if len(c) > 1:
-            axpy(c[1], work_b, out)
+    accumulate_pair(outs, cmat[:, 0], psi, cmat[:, 1], work_b, overwrite=True)
     work_a[...] = psi
     prev, cur = work_a, work_b
     alpha, beta = 2.0 / a, -2.0 * b / a
     for n in range(2, order):
         # prev <- 2 Ht cur - prev  (= phi_n)
         fused_update(op, cur, prev, alpha, beta, -1.0)
-        prev, cur = cur, prev
-        for c, out in zip(coeffs, outs):
-            if n < len(c):
-                axpy(c[n], cur, out)
+        prev, cur = cur, prev  # cur = phi_n, prev = phi_{n-1}
+        if n % 2 == 1:
+            accumulate_pair(outs, cmat[:, n - 1], prev, cmat[:, n], cur)
+        elif n == order - 1:
+            accumulate_pair(outs, cmat[:, n], cur, cmat[:, n + 1], prev)  # second factor is 0
     return order - 1, order, max(errs)
 
 
@@ -442,7 +448,7 @@ def evolve(op, psi0: np.ndarray, times, *, method: str = "chebyshev",
     if method == "chebyshev":
         work_a = np.empty_like(state)
         work_b = np.empty_like(state)
-        outs = [np.empty_like(state) for _ in range(min(block, n_times - 1 - i))]
+        outs = np.empty((min(block, n_times - 1 - i), state.size), np.complex128)
         vectors = 3 + len(outs)
         while i < n_times - 1:
             j_end = min(n_times - 1, (i // block + 1) * block)
@@ -465,8 +471,7 @@ def evolve(op, psi0: np.ndarray, times, *, method: str = "chebyshev",
                     on_output(i + 1 + k, float(times[i + 1 + k]), _readonly(outs[k]))
                 if progress is not None:
                     progress(i + 1 + k, n_times - 1)
-            last = len(dts) - 1
-            state, outs[last] = outs[last], state
+            state[...] = outs[len(dts) - 1]
             i = j_end
         substeps = steps
     else:

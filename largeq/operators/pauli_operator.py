@@ -8,6 +8,7 @@ assemble the same matrix explicitly (used in tests and the exact engine).
 
 from __future__ import annotations
 
+import numba
 import numpy as np
 import scipy.sparse as sp
 from scipy.sparse.linalg import LinearOperator
@@ -25,6 +26,7 @@ def _zsign(z, b):
 
 
 _CHUNK = 6  # strings per sign-pattern table (table size 4**_CHUNK)
+_TILE_SCRATCH_MAX = 16 * 2**20  # bytes of one tile scratch array (per thread, two of them)
 
 
 def _lo_pattern(zlo: np.ndarray, states: np.ndarray) -> np.ndarray:
@@ -112,7 +114,12 @@ class PauliOperator(LinearOperator):
         self.coeff_dtype = np.dtype(cdtype)
         self.hermitian = pauli.is_hermitian()
         super().__init__(dtype=cdtype, shape=(basis.dim, basis.dim))
+        self._tile_cache = {}
         self._build(cdtype)
+        # the tiled product (real operators) holds two (largest block, TILE_WIDTH) scratch arrays
+        # per thread; bases split with very large blocks keep the block-by-block kernel
+        max_block = int(np.max(np.diff(basis.lo_start))) if basis.lo_start.size > 1 else 0
+        self._tiling_ok = real and max_block * kernels.TILE_WIDTH * 8 <= _TILE_SCRATCH_MAX
 
     # ------------------------------------------------------------------ tables
     def _build(self, cdtype):
@@ -259,12 +266,83 @@ class PauliOperator(LinearOperator):
     def _vec_dtype(self, x):
         return np.result_type(self.coeff_dtype, x.dtype)
 
+    def _tile_args(self, m: int):
+        """Tiles of blocks for m real columns (see ``kernels.tiled_kernel``) and thread scratch."""
+        key = (m, numba.get_num_threads())
+        cached = self._tile_cache.get(key)
+        if cached is not None:
+            return cached
+        b = self.basis
+        per = kernels.TILE_WIDTH // m
+        his = np.nonzero(b.block_offset >= 0)[0]
+        cls = b.block_lo_up[his]
+        tiles = []
+        for n in np.unique(cls).tolist():
+            hs = his[cls == n]
+            pad = (-hs.size) % per
+            hs = np.concatenate([hs, np.full(pad, -1, np.int64)])
+            tiles.append(hs.reshape(-1, per))
+        tiles = np.concatenate(tiles) if tiles else np.zeros((0, per), np.int64)
+        # tiles in the order of their first block: the blocks whose input the high-site terms read
+        # (hi ^ mask) were read shortly before, and are still in cache
+        tiles = np.ascontiguousarray(tiles[np.argsort(tiles[:, 0], kind="stable")])
+        max_size = int(np.max(np.diff(b.lo_start))) if b.lo_start.size > 1 else 0
+        scratch = np.empty((numba.get_num_threads(), 2, max(max_size, 1), kernels.TILE_WIDTH))
+        self._tile_cache[key] = (tiles, scratch)
+        return tiles, scratch
+
+    def _tiled(self, xf, yf, m, scal):
+        """The tiled product on m real columns; xf, yf: flat float64 views of (dim, m) arrays."""
+        b = self.basis
+        tiles, scratch = self._tile_args(m)
+        kernels.tiled_kernels[m](b.n_lo, b.block_offset, b.block_lo_up, b.lo_start,
+                                 self._diag[0], self._diag[1], *self._cross_diag,
+                                 *self._lo, *self._hi, *self._cross,
+                                 tiles, scratch, xf.reshape(-1, m), yf.reshape(-1, m), xf, yf, *scal)
+
     def fused_update(self, x, y, alpha=1.0, beta=0.0, gamma=0.0):
         """In place ``y <- alpha * (A x) + beta * x + gamma * y``; x and y distinct 1-d arrays."""
         x, scal = fused_arguments(self.shape[0], self.coeff_dtype, x, y, alpha, beta, gamma)
         with threads_for(self.shape[0]):
-            kernels.fused_kernel(*self._args(), x, y, *scal)
+            if self._tiling_ok and all(np.imag(s) == 0 for s in scal):
+                m = 2 if np.iscomplexobj(y) else 1
+                self._tiled(x.view(np.float64), y.view(np.float64), m, [float(np.real(s)) for s in scal])
+            else:
+                kernels.fused_kernel(*self._args(), x, y, *scal)
         return y
+
+    def fused_update_block(self, X, Y, alpha=1.0, beta=0.0, gamma=0.0):
+        """``Y <- alpha * (A X) + beta * X + gamma * Y`` for R vectors at once (columns of (dim, R) arrays).
+
+        X and Y: distinct C-contiguous arrays of shape (dim, R) (row i holds entry i of every vector).
+        For a real operator and real scalars every index of the operator is read once per R
+        vectors (two real columns per complex vector); otherwise the columns are done one by one.
+        """
+        n = self.shape[0]
+        if X.ndim != 2 or X.shape != Y.shape or X.shape[0] != n:
+            raise ValueError(f"fused_update_block: need two arrays of shape ({n}, R), got {X.shape} and {Y.shape}")
+        if X is Y or np.shares_memory(X, Y):
+            raise ValueError("fused_update_block: X and Y must not share memory")
+        if not (X.flags.c_contiguous and Y.flags.c_contiguous):
+            raise ValueError("fused_update_block: arrays must be C-contiguous")
+        R = X.shape[1]
+        need = np.result_type(self.coeff_dtype, X.dtype)
+        if Y.dtype != need:
+            raise TypeError(f"fused_update_block: output dtype {Y.dtype} cannot hold the result ({need})")
+        if X.dtype != need:
+            X = X.astype(need)
+        m = R * (2 if np.iscomplexobj(Y) else 1)
+        real_scal = all(np.imag(s) == 0 for s in (alpha, beta, gamma))
+        if self._tiling_ok and real_scal and kernels.TILE_WIDTH % m == 0:
+            scal = [float(np.real(s)) for s in (alpha, beta, gamma)]
+            with threads_for(n):
+                self._tiled(X.reshape(-1).view(np.float64), Y.reshape(-1).view(np.float64), m, scal)
+            return Y
+        for j in range(R):
+            yj = np.ascontiguousarray(Y[:, j])
+            self.fused_update(np.ascontiguousarray(X[:, j]), yj, alpha, beta, gamma)
+            Y[:, j] = yj
+        return Y
 
     def _matvec(self, x):
         x = np.ascontiguousarray(np.asarray(x).reshape(-1))
