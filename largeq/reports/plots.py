@@ -88,7 +88,7 @@ def _legend_outside(ax, **kw) -> None:
         ax.legend(handles, labels, loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0, **kw)
 
 
-def _title(target, text: str | None, width: int = 80) -> None:
+def _title(target, text: str | None, width: int = 72) -> None:
     """A title wrapped onto as many lines as it needs (never cut)."""
     if text:
         wrapped = textwrap.fill(str(text), width=width)

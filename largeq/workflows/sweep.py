@@ -1,6 +1,6 @@
 """``largeq sweep``: one scenario over several chain lengths, as tasks on a Dask cluster, with finite-size fits.
 
-For each chain length L (and each disorder realisation when asked) one task measures:
+For each chain length L (and each disorder realization when asked) one task measures:
 
 * exact equilibration (``equilibration.exact_equilibration``: d_eff, diagonal-ensemble values, exact sigma^2,
   fluctuation bound) where the state's symmetric subspace fits a dense diagonalization (``--max-dim``);
@@ -12,7 +12,7 @@ For each chain length L (and each disorder realisation when asked) one task meas
 * cost: wall time, matrix-vector products (all of them, counted on the operator) and the peak resident
   memory of the task (sampled), next to the memory forecast checked before submission.
 
-Each finished task is saved at once (``sizes/L016.json`` + ``sizes/L016.h5``; with realisations
+Each finished task is saved at once (``sizes/L016.json`` + ``sizes/L016.h5``; with realizations
 ``L016-r003``); a rerun of the same command in the same folder skips tasks already saved for the same scenario
 and options.  The table (``table.csv`` and ``results.h5``), the fits of ``largeq.analysis.fits`` (ln d_eff = a + s L,
 ln sigma_A = b - kappa L, <A>_inf linear in 1/L), the extrapolation to ``--target`` with 1-sigma bands, the
@@ -62,7 +62,7 @@ class SweepOptions:
     target : int or None
         Chain length to extrapolate to (besides L -> infinity for equilibrium values).
     realizations : int
-        Disorder realisations per size (scenarios with random fields only).
+        Disorder realizations per size (scenarios with random fields only).
     max_dim : int
         Largest dense diagonalization; larger subspaces use the KPM estimate.
     n_moments, n_vectors : int
@@ -71,7 +71,7 @@ class SweepOptions:
         Compute canonical and microcanonical values.
     thermal_vectors : int
     seed : int
-        Seed of the random vectors (one child per size and realisation).
+        Seed of the random vectors (one child per size and realization).
     kpm_everywhere : bool
         Also estimate d_eff by KPM where the exact value is available (to compare).
     """
@@ -442,7 +442,7 @@ def _num(x):
 
 
 def sweep_table(sizes, tasks, rows: dict, observables) -> list[dict]:
-    """One row per size (realisations averaged: mean and standard error), flat keys for CSV."""
+    """One row per size (realizations averaged: mean and standard error), flat keys for CSV."""
     from largeq.workflows.disorder import aggregate
 
     table = []
@@ -490,8 +490,8 @@ def _errors(table, key):
 def fit_trends(table: list[dict], observables, target: int | None) -> dict:
     """Fits of d_eff, sigma_A and <A>_inf over L and extrapolations (see the module docstring).
 
-    With disorder realisations the standard errors weight the fit (errors taken as given); with one
-    realisation the points are exact or deterministic estimates and the parameter errors come from the scatter
+    With disorder realizations the standard errors weight the fit (errors taken as given); with one
+    realization the points are exact or deterministic estimates and the parameter errors come from the scatter
     about the line (chi^2 / dof).  Fits need at least 3 sizes.  The d_eff fit uses only exact values when at
     least 3 sizes have them.
     """
