@@ -7,7 +7,7 @@ symmetry operations the Hamiltonian has, as permutations of the basis states:
 
 * translation T: site j -> j + 1 (mod L), on a translation-invariant ring;
 * reflection R: site j -> L - 1 - j;
-* spin flip Z = prod_j sigma^x_j: b -> b XOR (2^L - 1), in the full space or at n_up = L/2.
+* spin flip (label 'spin flip +-1') = prod_j sigma^x_j: b -> b XOR (2^L - 1), in the full space or at n_up = L/2.
 
 Each is checked to commute with H on the basis before it is used (a flag that is wrong for some
 Hamiltonian only costs a symmetry, never a wrong block).  A 1-d representation chi of the group they
@@ -257,9 +257,9 @@ def _label(qn: dict, L: int) -> str:
     if qn["k"] is not None:
         parts.append(f"k = 2pi*{qn['k']}/{L}")
     if qn["reflection"] is not None:
-        parts.append(f"R = {qn['reflection']:+d}")
+        parts.append(f"reflection {qn['reflection']:+d}")
     if qn["spin_flip"] is not None:
-        parts.append(f"Z = {qn['spin_flip']:+d}")
+        parts.append(f"spin flip {qn['spin_flip']:+d}")
     return ", ".join(parts) or "no symmetry resolved"
 
 

@@ -458,28 +458,48 @@ def plot_thermal(
     return _save(fig, path)
 
 
+def _log_labels(ax) -> None:
+    """Plain-number tick labels on a log y axis; minor ticks labelled only when it spans < 1.5 decades."""
+    lo, hi = ax.get_ylim()
+    plain = matplotlib.ticker.FuncFormatter(lambda v, _: f"{v:g}")
+    ax.yaxis.set_major_formatter(plain)
+    if lo > 0 and np.log10(hi / lo) < 1.5:
+        ax.yaxis.set_minor_formatter(plain)
+    else:
+        ax.yaxis.set_minor_formatter(matplotlib.ticker.NullFormatter())
+
+
 def _draw_versus_size(ax, L, series, *, logy=False, fit=None, bands=None, ylabel="value",
                       xlabel="chain length L") -> None:
-    colors = dict(zip(series, _colors(len(series))))
-    for i, label in enumerate(series):
-        vals, errs = series[label]
-        y = _real(vals)
+    arrays = {label: _real(series[label][0]) for label in series}
+    groups = _same_curves(arrays)  # identical series drawn once, labelled with every name
+    colors = {}
+    for i, (group, color) in enumerate(zip(groups, _colors(len(groups)))):
+        vals, errs = series[group[0]]
         yerr = None if errs is None else np.abs(_real(errs))
         if yerr is not None and not np.any(np.isfinite(yerr)):
             yerr = None
-        ax.errorbar(L, y, yerr=yerr, color=colors[label], marker=MARKERS[i % len(MARKERS)], ms=5,
-                    lw=0.9, ls=LINESTYLES[i % len(LINESTYLES)], capsize=3, label=label)
-    fit_colors = _colors(len(series) + len(fit or {}))
-    for j, (label, (xf, yf)) in enumerate((fit or {}).items()):
+        ax.errorbar(L, arrays[group[0]], yerr=yerr, color=color, marker=MARKERS[i % len(MARKERS)], ms=5,
+                    lw=0.9, ls=LINESTYLES[i % len(LINESTYLES)], capsize=3, label=" = ".join(group))
+        for label in group:
+            colors[label] = color
+    fits = dict(fit or {})
+    fit_groups = _same_curves({k: _real(v[1]) for k, v in fits.items()}) if fits else []
+    fit_colors = _colors(len(groups) + len(fit_groups))
+    for j, group in enumerate(fit_groups):
+        label = group[0]
+        xf, yf = fits[label]
         # a fit takes the colour of the series whose name it contains, else its own
-        color = next((c for name, c in colors.items() if name in label), fit_colors[len(series) + j])
+        color = next((c for name, c in sorted(colors.items(), key=lambda kv: -len(kv[0])) if name in label),
+                     fit_colors[len(groups) + j])
         ax.plot(_real(xf), _real(yf), ls=LINESTYLES[(j + 1) % len(LINESTYLES)], lw=1.2, color=color,
-                alpha=0.9, label=label)
+                alpha=0.9, label=" = ".join(group))
         if bands and label in bands:
             xb, lo, hi = bands[label]
             ax.fill_between(_real(xb), _real(lo), _real(hi), color=color, alpha=0.15, lw=0)
     if logy:
         ax.set_yscale("log")
+        _log_labels(ax)
     ax.set_xlabel(xlabel)
     ax.set_ylabel(ylabel)
     if xlabel.startswith("chain length"):

@@ -612,19 +612,22 @@ def _plots_and_report(out, scenario, table, fits, objs, names, options) -> None:
     series = {"d_eff": (np.array([r["d_eff"] for r in table]), err("d_eff"))}
     if any("d_eff_kpm" in r for r in table):
         series["d_eff (KPM)"] = (np.array([r.get("d_eff_kpm", np.nan) for r in table]), None)
-    fit = {}
+    fit, bands = {}, {}
     if "d_eff" in objs:
         v, lo, hi = objs["d_eff"].at(Lf)
         fit = {"fit ln d_eff = a + sL": (Lf, v)}
-    plots.plot_versus_size(out / "deff_vs_L.png", L, series, logy=True, fit=fit, ylabel="effective dimension d_eff",
-                           title=scenario.title)
-    series, fit = {}, {}
+        bands = {"fit ln d_eff = a + sL": (Lf, lo, hi)}
+    plots.plot_versus_size(out / "deff_vs_L.png", L, series, logy=True, fit=fit, bands=bands,
+                           ylabel="effective dimension d_eff", title=scenario.title)
+    series, fit, bands = {}, {}, {}
     for n in names:
         series[f"σ_A {n}"] = (np.array([r.get(f"{n}.sigma", np.nan) for r in table]), err(f"{n}.sigma"))
         if f"{n}.sigma" in objs:
-            fit[f"fit {n}"] = (Lf, objs[f"{n}.sigma"].at(Lf)[0])
-    plots.plot_versus_size(out / "sigma_vs_L.png", L, series, logy=True, fit=fit,
-                           ylabel="temporal fluctuation σ_A (late window)")
+            v, lo, hi = objs[f"{n}.sigma"].at(Lf)
+            fit[f"fit σ_A {n}"] = (Lf, v)
+            bands[f"fit σ_A {n}"] = (Lf, lo, hi)
+    plots.plot_versus_size(out / "sigma_vs_L.png", L, series, logy=True, fit=fit, bands=bands,
+                           ylabel="temporal fluctuation σ_A (late window)", title=scenario.title)
     series, fit = {}, {}
     x = 1.0 / L
     xf = np.linspace(0.0, x.max(), 50)
@@ -632,14 +635,17 @@ def _plots_and_report(out, scenario, table, fits, objs, names, options) -> None:
         series[f"⟨{n}⟩∞"] = (np.array([r.get(f"{n}.equilibrium", np.nan) for r in table]),
                              np.array([r.get(f"{n}.equilibrium_err", np.nan) for r in table]))
         if f"{n}.equilibrium" in objs:
-            fit[f"fit {n}"] = (xf, objs[f"{n}.equilibrium"].fit.predict(xf)[0])
+            fit[f"fit ⟨{n}⟩∞"] = (xf, objs[f"{n}.equilibrium"].fit.predict(xf)[0])
     plots.plot_versus_size(out / "equilibrium_vs_invL.png", x, series, fit=fit, xlabel="1 / L",
-                           ylabel="equilibrium value (late window)")
-    plots.plot_versus_size(out / "cost_vs_L.png", L, {
-        "wall time (s)": (np.array([r["wall_seconds"] for r in table]), None),
-        "products / 100": (np.array([r["matvecs"] for r in table]) / 100, None),
-        "peak memory (MiB)": (np.array([r["peak_rss_bytes"] for r in table]) / 2**20, None)},
-        logy=True, ylabel="cost per task")
+                           ylabel="late-window mean", title=scenario.title)
+    plots.plot_panels_versus_size(out / "cost_vs_L.png", L, [
+        {"series": {"wall time": (np.array([r["wall_seconds"] for r in table]), None)}, "logy": True,
+         "ylabel": "wall time (s)"},
+        {"series": {"matrix-vector products": (np.array([r["matvecs"] for r in table], float), None)},
+         "ylabel": "products"},
+        {"series": {"peak memory": (np.array([r["peak_rss_bytes"] for r in table]) / 2**20, None)}, "logy": True,
+         "ylabel": "peak memory (MiB)"},
+    ], title=f"{scenario.title}: cost per task")
     rows = []
     for key, t in fits["trends"].items():
         rows.append((f"{key}: {t['form']}", t["rate"], t["rate_err"]))
