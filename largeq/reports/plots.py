@@ -88,10 +88,22 @@ def _legend_outside(ax, **kw) -> None:
         ax.legend(handles, labels, loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0, **kw)
 
 
+def _wrap(text: str, width: int) -> str:
+    """Break a long title at a natural place (before '(' or after ':' / ';'), else by words."""
+    if len(text) <= width:
+        return text
+    cuts = [i for i in range(1, len(text)) if text[i - 1:i + 1] in (" (", ": ", "; ") and i <= width]
+    if cuts:
+        i = cuts[-1]
+        head, tail = text[:i].rstrip(), text[i:].lstrip()
+        return head + "\n" + _wrap(tail, width)
+    return textwrap.fill(text, width=width, break_on_hyphens=False)
+
+
 def _title(target, text: str | None, width: int = 72) -> None:
     """A title wrapped onto as many lines as it needs (never cut)."""
     if text:
-        wrapped = textwrap.fill(str(text), width=width)
+        wrapped = _wrap(str(text), width)
         if isinstance(target, Figure):
             target.suptitle(wrapped, fontsize=10)
         else:

@@ -98,7 +98,8 @@ def _observable_rows(summary: dict) -> list:
         rows.append((f"{n}: temporal variance σ²", fmt(o["temporal_variance"], digits=3),
                      f"σ = {fmt(np.sqrt(max(o['temporal_variance'], 0.0)), digits=3)}"))
         t_relax = o.get("relaxation_time")
-        rows.append((f"{n}: relaxation time", fmt(t_relax, digits=3) if t_relax is not None else "not reached",
+        reached = t_relax is not None and np.isfinite(t_relax)
+        rows.append((f"{n}: relaxation time", fmt(t_relax, digits=3) if reached else "not reached",
                      "settled" if o["settled"] else "NOT settled"))
         kc = o.get("known_curve")
         if kc:
