@@ -188,7 +188,8 @@ def _aggregate_relax(scenario, out: Path, seeds, summaries, wall) -> dict:
     plots.plot_relaxation(out / "relaxation.png", times, {n: c[0] for n, c in curves.items()},
                           equilibrium={n: (obs[n]["equilibrium"]["mean"], obs[n]["equilibrium"]["spread"])
                                        for n in names},
-                          title=f"{scenario.title} (mean of {len(seeds)} realizations; band: spread)")
+                          equilibrium_label="late-window mean ± spread over realizations",
+                          title=f"{scenario.title} (mean of {len(seeds)} realizations)")
     rows = []
     for n in names:
         e = obs[n]["equilibrium"]
