@@ -229,7 +229,15 @@ def plot_relaxation(
                 k += 1
             ax.axhline(float(value), color=c, lw=lw, ls=ls, label=label)
         ax.set_ylabel(name)
-        _legend_outside(ax)
+    # the styles are the same in every panel: one legend, beside the first panel, lists them all
+    handles, labels = {}, []
+    for ax in axes:
+        for h, lab in zip(*ax.get_legend_handles_labels()):
+            if lab not in handles:
+                handles[lab] = h
+                labels.append(lab)
+    axes[0].legend([handles[lab] for lab in labels], labels, loc="upper left", bbox_to_anchor=(1.01, 1.0),
+                   borderaxespad=0.0)
     axes[-1].set_xlabel(TIME_LABEL)
     _title(axes[0], title)
     return _save(fig, path)

@@ -99,8 +99,12 @@ def _observable_rows(summary: dict) -> list:
                      f"σ = {fmt(np.sqrt(max(o['temporal_variance'], 0.0)), digits=3)}"))
         t_relax = o.get("relaxation_time")
         reached = t_relax is not None and np.isfinite(t_relax)
-        rows.append((f"{n}: relaxation time", fmt(t_relax, digits=3) if reached else "not reached",
-                     "settled" if o["settled"] else "NOT settled"))
+        if o["settled"]:
+            rows.append((f"{n}: relaxation time", fmt(t_relax, digits=3) if reached else "n/a", "settled"))
+        else:
+            rows.append((f"{n}: relaxation time", "not reached",
+                         "NOT settled" + (f" (inside the band from t = {fmt(t_relax, digits=3)} on, too late or "
+                                          "too short to judge)" if reached else "")))
         kc = o.get("known_curve")
         if kc:
             rows.append((f"{n}: against {kc['formula']}", fmt(kc["max_deviation_until_valid"], digits=2),
