@@ -123,6 +123,14 @@ def test_describe_does_not_contradict_itself(capsys):
     assert "spin flip +1" in out
 
 
+def test_forecast_states_the_dimension_once(capsys):
+    assert main(["forecast", "neel_j1j2", "--sites", "34"]) == 0
+    out = capsys.readouterr().out
+    basis_line = next(line for line in out.splitlines() if line.strip().startswith("basis:"))
+    assert basis_line.count("2,333,606,220") == 2  # the label's C(34,17) = ..., and "instead of" in the reason
+    assert "(dimension 2,333,606,220)" not in basis_line
+
+
 # ------------------------------------------------------------------------------------------ report pages
 class _Page(HTMLParser):
     """Images, headline cells and <pre> text of a report page."""

@@ -264,6 +264,7 @@ def plot_distance(
     distances: Mapping[str, Sequence[float]],
     *,
     fluctuation_level: Mapping[str, float] | None = None,
+    bound_level: Mapping[str, float] | None = None,
     title: str | None = None,
 ) -> Path:
     """Distance to equilibrium d(t) = (⟨A(t)⟩ − ⟨A⟩∞)² on a log axis.
@@ -282,6 +283,8 @@ def plot_distance(
         d(t) per observable; non-positive values are left as gaps.
     fluctuation_level : mapping of name to float, optional
         Temporal fluctuation σ_A² per observable, drawn as a dashed horizontal line.
+    bound_level : mapping of name to float, optional
+        Upper bound on σ_A² per observable (e.g. from d_eff), drawn dotted in the same colour.
     title : str, optional
 
     Returns
@@ -300,6 +303,10 @@ def plot_distance(
             level = fluctuation_level[group[0]]
             if level is not None and np.isfinite(level) and level > 0:
                 ax.axhline(float(level), color=color, ls=(0, (2, 2)), lw=1.0, alpha=0.9, label=f"σ² {label}")
+        if bound_level and group[0] in bound_level:
+            level = bound_level[group[0]]
+            if level is not None and np.isfinite(level) and level > 0:
+                ax.axhline(float(level), color=color, ls=(0, (0.8, 2.5)), lw=1.6, label=f"bound on σ² {label}")
     ax.set_yscale("log")
     ax.set_xlabel(TIME_LABEL)
     ax.set_ylabel("d(t) = (⟨A(t)⟩ − late-window mean)²")

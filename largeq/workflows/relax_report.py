@@ -67,6 +67,7 @@ def _plots(folder: Path, scenario, summary: dict, tree: dict) -> None:
     )
     plots.plot_distance(folder / "distance.png", times, {n: analysis[n]["distance"] for n in names},
                         fluctuation_level={n: obs[n]["temporal_variance"] for n in names},
+                        bound_level={n: obs[n]["bound"] for n in names if obs[n].get("bound") is not None},
                         title="distance to the late-window mean")
     survival = np.asarray(curves["survival_probability"], float)
     d_eff = (summary.get("equilibration") or {}).get("d_eff")
