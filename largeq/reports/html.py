@@ -43,6 +43,7 @@ th,td{text-align:left;padding:.2em .5em;border-bottom:1px solid #eee;vertical-al
 td.num{font-family:ui-monospace,Menlo,Consolas,monospace;white-space:nowrap}
 th{background:#f3f3f3}
 p{margin:.3em 0 .6em}
+table.wide{margin-top:.6em}
 .headline{border:2px solid #4a7;background:#f6fff8}
 .headline table{font-size:.95em}
 .headline td.label{font-weight:600;white-space:nowrap}
@@ -73,6 +74,9 @@ class Section:
         A bulleted list (shown in a fixed-width font, e.g. the Hamiltonian's terms).
     preformatted : str, optional
         Text shown verbatim (escaped), e.g. the scenario TOML.
+    columns, rows : sequences, optional
+        A full-width table with a header row (``columns``) under the plots, one row per entry of
+        ``rows`` (cells are formatted with :func:`format_number`).
     """
 
     heading: str
@@ -81,6 +85,8 @@ class Section:
     paragraphs: Sequence[str] = field(default_factory=tuple)
     items: Sequence[str] = ()
     preformatted: str | None = None
+    columns: Sequence[str] = ()
+    rows: Sequence[Sequence[Any]] = ()
 
 
 def _is_number(x: Any) -> bool:
@@ -188,12 +194,22 @@ def _section(sec: Section, folder: Path) -> str:
     table = ""
     if sec.table:
         rows = "".join(_row(r) for r in sec.table)
-        table = ("<table><thead><tr><th>quantity</th><th>value</th><th>error / note</th>"
-                 f"</tr></thead><tbody>{rows}</tbody></table>")
+        if all(len(r) < 3 or r[2] in (None, "") for r in sec.table):
+            rows = rows.replace("<td></td></tr>", "</tr>")
+            head = "<th>quantity</th><th>value</th>"
+        else:
+            head = "<th>quantity</th><th>value</th><th>error / note</th>"
+        table = f"<table><thead><tr>{head}</tr></thead><tbody>{rows}</tbody></table>"
     if figs and table:
         parts.append(f'<div class="grid"><div class="figs">{figs}</div><div>{table}</div></div>')
     elif figs or table:
         parts.append(f'<div class="figs">{figs}</div>' if figs else table)
+    if sec.columns:
+        head = "".join(f"<th>{html.escape(str(c))}</th>" for c in sec.columns)
+        body = "".join("<tr>" + "".join(f'<td class="num">{html.escape(format_number(c))}</td>' if _is_number(c)
+                                        else f"<td>{html.escape(str(c))}</td>" for c in r) + "</tr>"
+                       for r in sec.rows)
+        parts.append(f'<table class="wide"><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>')
     parts.append("</section>")
     return "\n".join(parts)
 
