@@ -628,15 +628,17 @@ def _plots_and_report(out, scenario, table, fits, objs, names, options) -> None:
             bands[f"fit σ_A {n}"] = (Lf, lo, hi)
     plots.plot_versus_size(out / "sigma_vs_L.png", L, series, logy=True, fit=fit, bands=bands,
                            ylabel="temporal fluctuation σ_A (late window)", title=scenario.title)
-    series, fit = {}, {}
+    series, fit, bands = {}, {}, {}
     x = 1.0 / L
     xf = np.linspace(0.0, x.max(), 50)
     for n in names:
         series[f"⟨{n}⟩∞"] = (np.array([r.get(f"{n}.equilibrium", np.nan) for r in table]),
                              np.array([r.get(f"{n}.equilibrium_err", np.nan) for r in table]))
         if f"{n}.equilibrium" in objs:
-            fit[f"fit ⟨{n}⟩∞"] = (xf, objs[f"{n}.equilibrium"].fit.predict(xf)[0])
-    plots.plot_versus_size(out / "equilibrium_vs_invL.png", x, series, fit=fit, xlabel="1 / L",
+            v, e = objs[f"{n}.equilibrium"].fit.predict(xf)
+            fit[f"fit ⟨{n}⟩∞"] = (xf, v)
+            bands[f"fit ⟨{n}⟩∞"] = (xf, v - e, v + e)
+    plots.plot_versus_size(out / "equilibrium_vs_invL.png", x, series, fit=fit, bands=bands, xlabel="1 / L",
                            ylabel="late-window mean", title=scenario.title)
     plots.plot_panels_versus_size(out / "cost_vs_L.png", L, [
         {"series": {"wall time": (np.array([r["wall_seconds"] for r in table]), None)}, "logy": True,
