@@ -491,7 +491,10 @@ def _log_labels(ax) -> None:
     plain = matplotlib.ticker.FuncFormatter(lambda v, _: f"{v:g}")
     ax.yaxis.set_major_formatter(plain)
     if lo > 0 and np.log10(hi / lo) < 1.5:
-        ax.yaxis.set_minor_formatter(plain)
+        def minor(v, _):
+            mant = v / 10 ** np.floor(np.log10(v)) if v > 0 else 0
+            return f"{v:g}" if round(mant) in (2, 5) else ""
+        ax.yaxis.set_minor_formatter(matplotlib.ticker.FuncFormatter(minor))
     else:
         ax.yaxis.set_minor_formatter(matplotlib.ticker.NullFormatter())
 
