@@ -6,7 +6,7 @@ from largeq.cli.common import UsageError, add_progress_arguments, add_scenario_a
 from largeq.workflows.disorder import run_disorder_relaxation
 from largeq.workflows.relax import RelaxOptions, resume_relaxation, run_relaxation
 from largeq.constants import ESTIMATOR_SEED
-from largeq.reports.headline import fmt, headline_text, relax_headline
+from largeq.reports.headline import fmt, fmt_error, headline_text, relax_headline
 
 
 def add_parser(sub) -> None:
@@ -60,8 +60,8 @@ def _print_disorder_summary(result) -> None:
           f"{s['matvecs']} products in {s['wall_seconds']:.1f} s")
     for name, o in s["observables"].items():
         e, v = o["equilibrium"], o["temporal_variance"]
-        print(f"  {name:18s} equilibrium {e['mean']:+.5f} +- {e['stderr']:.1e} (spread {e['spread']:.2e})   "
-              f"sigma^2 {v['mean']:.2e} +- {v['stderr']:.1e}")
+        print(f"  {name:18s} late-window mean {fmt_error(e['mean'], e['stderr'])} (spread {fmt(e['spread'], digits=2)}); "
+              f"σ² {fmt_error(v['mean'], v['stderr'])}")
     print(f"  results: {result.folder}/ (realization-*/, results.h5, summary.json, report.html)")
 
 
