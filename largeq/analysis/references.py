@@ -65,7 +65,7 @@ def known_curves(scenario, initial_values: dict[str, float]) -> dict[str, KnownC
         if not np.isfinite(a0):
             continue
         out[spec.name] = KnownCurve(
-            label=f"{a0:+.3g} J0(2Jt), infinite chain",
+            label=f"{a0:+.3g}·J0(2Jt) (infinite chain)",
             source="free fermions: Flesch et al., Phys. Rev. A 78, 033608 (2008)",
             value=(lambda t, a0=a0: a0 * j0(2.0 * J * np.asarray(t, float))),
             valid_until=valid,

@@ -69,7 +69,9 @@ def _print_relax_summary(result) -> None:
     """The run in a few lines: what was run, then the headline (the same lines as report.html's answer)."""
     s = result.summary
     print(f"{s['title']}")
-    print(f"  L = {s['sites']}, {s['basis']['kind']} basis, dimension {s['basis']['dimension']:,}; "
+    sectors = s.get("symmetry_sectors") or {}
+    split = f" split into {len(sectors['sectors'])} symmetry sectors" if sectors.get("sectors") else ""
+    print(f"  L = {s['sites']}, {s['basis']['kind']} basis, dimension {s['basis']['dimension']:,}{split}; "
           f"{s['method']} (tolerance {s['tolerance']:g}); initial energy {fmt(s['initial_energy'], digits=6)}")
     print("\n".join(headline_text(relax_headline(s))))
     print(f"  results: {result.folder}/ (results.h5, summary.json, report.html)")

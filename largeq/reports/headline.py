@@ -191,6 +191,11 @@ def relax_headline(summary: dict) -> list[HeadlineLine]:
             ratio = o.get("measured_variance_over_bound")
             if _finite(ratio):
                 parts += [", σ²/bound = ", _cell(summary, k("measured_variance_over_bound"), _sig)]
+        kc = o.get("known_curve")
+        if kc and _finite(kc.get("max_deviation_until_valid")):
+            parts += [f"; follows {kc['formula']} within ",
+                      _cell(summary, k("known_curve.max_deviation_until_valid"), lambda v: fmt(v, digits=2)),
+                      " up to t = ", _cell(summary, k("known_curve.valid_until"), _sig)]
         lines.append(HeadlineLine(name, parts, "settled" if settled else "not settled"))
     d = eq.get("d_eff")
     if _finite(d):
