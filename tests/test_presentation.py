@@ -251,3 +251,28 @@ def test_report_renders_in_a_headless_browser(tmp_path, capsys):
     subprocess.run(cmd, check=True, timeout=120, capture_output=True)
     data = png.read_bytes()
     assert data[:8] == b"\x89PNG\r\n\x1a\n" and len(data) > 50_000  # a page with plots, not a blank one
+
+
+# ------------------------------------------------------------------------------------------ plot helpers
+def test_known_curve_only_where_the_closed_form_holds():
+    from largeq.analysis.references import known_curves
+    from largeq.scenario import resolve_scenario
+
+    xx = resolve_scenario("xx_neel", 12)
+    curves = known_curves(xx, {"mz_0": 1.0, "stag_mz": 1.0})
+    assert set(curves) == {"mz_0", "stag_mz"} and curves["mz_0"].valid_until == pytest.approx(3.0)
+    t = np.linspace(0, 3, 7)
+    np.testing.assert_allclose(curves["mz_0"].value(t), j0(2 * t))  # (-1)^0 J0(2Jt), J = 1
+    assert known_curves(resolve_scenario("neel_j1j2", 8), {"mz_0": 1.0}) == {}  # interacting: no closed form
+    assert known_curves(resolve_scenario("ising_tilted", 8), {"mz_avg": 0.5}) == {}
+
+
+def test_titles_break_at_natural_places_and_identical_curves_merge():
+    from largeq.reports.plots import _same_curves, _wrap
+
+    title = "Tilted spins quenched into a mixed-field Ising chain (g = -1.05, h = 0.5) (L = 10)"
+    wrapped = _wrap(title, 72)
+    assert wrapped.replace("\n", " ") == title and all(len(x) <= 72 for x in wrapped.split("\n"))
+    assert "h =\n" not in wrapped
+    a = np.linspace(0, 1, 50)
+    assert _same_curves({"stag_mz": a, "mz_0": a.copy(), "zz": a + 1}) == [["stag_mz", "mz_0"], ["zz"]]
