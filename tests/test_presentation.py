@@ -8,9 +8,7 @@ the summary key it came from, and must equal the saved value and appear in the c
 from __future__ import annotations
 
 import base64
-import html as html_lib
 import json
-import math
 import re
 import shutil
 import subprocess
@@ -22,7 +20,7 @@ import pytest
 from scipy.special import j0
 
 from largeq.cli import main
-from largeq.reports.headline import Cell, fmt, fmt_error, lookup, relax_headline
+from largeq.reports.headline import fmt, fmt_error, lookup, relax_headline
 from largeq.scenario.examples import builtin_examples, examples_markdown
 
 REPO = Path(__file__).resolve().parents[1]

@@ -19,7 +19,7 @@ from dataclasses import dataclass, field
 from typing import Any, Sequence
 
 __all__ = ["Cell", "HeadlineLine", "EXACT_ACCURACY", "fmt", "fmt_error", "relax_headline",
-           "hamiltonian_terms", "lookup"]
+           "hamiltonian_terms", "headline_text", "lookup"]
 
 #: accuracy stated for numbers that come out of dense linear algebra (diagonal ensemble, exact
 #: thermal values): anything smaller in magnitude is numerically zero and prints as 0
@@ -286,5 +286,3 @@ def headline_text(lines: Sequence[HeadlineLine], width: int = 18) -> list[str]:
     """The headline as console lines."""
     return [f"  {ln.label:{width}s} {ln.text()}" for ln in lines]
 
-
-__all__.append("headline_text")

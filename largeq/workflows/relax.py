@@ -25,7 +25,7 @@ from largeq.engines.propagate import evolve
 from largeq.engines.sector_evolution import advance_sectors
 from largeq.workflows.equilibration_step import equilibration_report
 from largeq.workflows.relax_report import known_curve_summary, write_relax_report
-from largeq.workflows.planning import available_bytes, check_fits, evolution_forecast, format_bytes
+from largeq.workflows.planning import available_bytes, check_fits, evolution_forecast
 from largeq.reports.progress import progress_bar
 from largeq.reports.checkpoint import CHECKPOINT_NAME, Checkpointer, load_checkpoint
 from largeq.reports.store import (Quantity, atomic_write_text, make_run_folder, package_versions,
