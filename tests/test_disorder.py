@@ -1,4 +1,4 @@
-"""Disorder realisations: deterministic recorded seeds, statistics, and relax --realizations."""
+"""Disorder realizations: deterministic recorded seeds, statistics, and relax --realizations."""
 
 import json
 
@@ -39,7 +39,7 @@ def test_aggregate_statistics():
     assert a["stderr"] == pytest.approx(a["spread"] / 20)
     # mean within 4 standard errors of the truth (false alarm 6e-5)
     assert abs(a["mean"] - 2.0) < 4 * a["stderr"]
-    m, se, sp = aggregate_curves(np.vstack([x[:200], x[200:]]).T)  # 200 "realisations" x 2 times? -> shape check
+    m, se, sp = aggregate_curves(np.vstack([x[:200], x[200:]]).T)  # 200 "realizations" x 2 times? -> shape check
     assert m.shape == (2,) and np.allclose(se, sp / np.sqrt(200))
 
 
@@ -58,6 +58,6 @@ def test_relax_realizations_cli(tmp_path, capsys):
             for k in range(2)]
     assert s["observables"]["imbalance"]["equilibrium"]["mean"] == pytest.approx(np.mean(vals))
     assert (out / "report.html").exists() and (out / "results.h5").exists()
-    # rerun keeps the finished realisations
+    # rerun keeps the finished realizations
     main(["relax", "disordered_heisenberg", "--sites", "6", "--realizations", "2", "--out", str(out), "--no-progress"])
     assert capsys.readouterr().out.count("already done") == 2

@@ -106,8 +106,8 @@ def test_spacing_ratio_drifts_when_sectors_are_mixed():
 
 
 def test_spacing_ratio_strong_disorder_poisson():
-    # random-field Heisenberg chain, W = 8, L = 12, n_up = 6, open, 5 seeded realisations:
-    # Poisson 2 ln 2 - 1 (Oganesyan & Huse 2007); the error bar is the scatter over realisations / sqrt(5)
+    # random-field Heisenberg chain, W = 8, L = 12, n_up = 6, open, 5 seeded realizations:
+    # Poisson 2 ln 2 - 1 (Oganesyan & Huse 2007); the error bar is the scatter over realizations / sqrt(5)
     # (it contains the sample-to-sample spread), tolerance 3 of those (measured 0.390 +- 0.004)
     L, W = 12, 8.0
     idx = sector_indices(L, L // 2)

@@ -346,8 +346,7 @@ def test_missing_file_and_bad_toml(tmp_path):
 
 
 # ------------------------------------------------------------------------ examples
-EXAMPLE_NAMES = ["neel_j1j2.toml", "ising_tilted.toml", "xx_neel.toml", "disordered_heisenberg.toml",
-                 "ising_ring_y.toml"]
+EXAMPLE_NAMES = sorted(p.name for p in (REPO / "largeq" / "scenario" / "builtin").glob("*.toml"))
 
 
 @pytest.mark.parametrize("name", EXAMPLE_NAMES)

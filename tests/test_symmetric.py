@@ -248,7 +248,7 @@ def test_exact_and_kpm_engines_accept_sector_operators():
 
 # ----------------------------------------------------------------------------- states and dynamics
 def test_neel_split_weights_and_sectors():
-    """The Neel state lies in (k = 0, R = +, F = +) and (k = pi, R = -, F = -), weight 1/2 each:
+    """The Neel state lies in (k = 0, reflection +1, spin flip +1) and (k = pi, reflection -1, spin flip -1), weight 1/2 each:
     F|Neel> = T|Neel> = R|Neel> (derived; bit j = site j, 1 = up)."""
     comps, note = split_basis_state(neel(12), 12, reflection=True, spin_flip=True)
     assert sorted((c.sector.key, round(c.weight, 12)) for c in comps) == [((0, 1, 1), 0.5), ((6, -1, -1), 0.5)]

@@ -34,6 +34,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+import math
+
 import numpy as np
 
 __all__ = [
@@ -384,7 +386,7 @@ def analyse_curve(
                       f"(A_ref = {ref_name} {a_ref:.6g})")
     if wm.n_independent < MIN_INDEPENDENT:
         reasons.append(
-            f"The window holds only {wm.n_independent:.1f} correlation times (T_window / 2 tau_int, "
+            f"The window holds only {math.floor(wm.n_independent * 100) / 100:g} correlation times (T_window / 2 tau_int, "
             f"tau_int = {wm.tau_int:.3g}); at least {MIN_INDEPENDENT:g} are needed for a reliable error bar."
         )
     # drift test: half means, errors from the fluctuations about a linear trend in the window

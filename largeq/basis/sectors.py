@@ -173,7 +173,7 @@ class SymmetricSector:
     def label(self) -> str:
         parts = [f"n_up = {self.up_spins} of L = {self.n_sites}"]
         if self.momentum is not None:
-            parts.append(f"k = 2 pi * {self.momentum}/{self.n_sites}")
+            parts.append(f"k = 2pi*{self.momentum}/{self.n_sites}")
         if self.reflection_parity is not None:
             parts.append(f"reflection {self.reflection_parity:+d}")
         if self.flip_parity is not None:

@@ -6,6 +6,7 @@ from largeq.cli.common import UsageError, add_progress_arguments, add_scenario_a
 from largeq.workflows.disorder import run_disorder_relaxation
 from largeq.workflows.relax import RelaxOptions, resume_relaxation, run_relaxation
 from largeq.constants import ESTIMATOR_SEED
+from largeq.reports.headline import fmt, fmt_error, headline_text, relax_headline
 
 
 def add_parser(sub) -> None:
@@ -25,7 +26,7 @@ def add_parser(sub) -> None:
                    help="evolve in momentum/reflection/spin-flip sectors when the model, the start and the "
                         "observables allow it (auto), or always in the magnetization sector (off)")
     p.add_argument("--realizations", type=int, default=1, metavar="N",
-                   help="disorder realisations (random fields only): one sub-folder each plus their average")
+                   help="disorder realizations (random fields only): one sub-folder each plus their average")
     add_progress_arguments(p)
     p.set_defaults(func=run)
 
@@ -55,41 +56,22 @@ def run(args) -> int:
 def _print_disorder_summary(result) -> None:
     s = result.summary
     print(f"{s['title']}")
-    print(f"  L = {s['sites']}, {s['realizations']} disorder realisations (seeds derived from {s['base_seed']}); "
+    print(f"  L = {s['sites']}, {s['realizations']} disorder realizations (seeds derived from {s['base_seed']}); "
           f"{s['matvecs']} products in {s['wall_seconds']:.1f} s")
     for name, o in s["observables"].items():
         e, v = o["equilibrium"], o["temporal_variance"]
-        print(f"  {name:18s} equilibrium {e['mean']:+.5f} +- {e['stderr']:.1e} (spread {e['spread']:.2e})   "
-              f"sigma^2 {v['mean']:.2e} +- {v['stderr']:.1e}")
+        print(f"  {name:18s} late-window mean {fmt_error(e['mean'], e['stderr'])} (spread {fmt(e['spread'], digits=2)}); "
+              f"σ² {fmt_error(v['mean'], v['stderr'])}")
     print(f"  results: {result.folder}/ (realization-*/, results.h5, summary.json, report.html)")
 
 
 def _print_relax_summary(result) -> None:
+    """The run in a few lines: what was run, then the headline (the same lines as report.html's answer)."""
     s = result.summary
     print(f"{s['title']}")
-    print(f"  L = {s['sites']}, {s['basis']['kind']} basis, dimension {s['basis']['dimension']:,}; "
-          f"{s['method']} (tolerance {s['tolerance']:g}); {s['matvecs']} products in {s['wall_seconds']:.1f} s")
-    print(f"  initial energy {s['initial_energy']:.6g}; energy drift {s['energy_drift']:.2g}; norm drift {s['norm_drift']:.2g}")
-    eq = s.get("equilibration", {})
-    if eq.get("d_eff") is not None:
-        lo, hi = eq["d_eff_range"]
-        rng = "" if lo == hi else f" [{lo:.3g}, {hi:.3g}]"
-        print(f"  effective dimension d_eff = {eq['d_eff']:.4g}{rng} ({eq['method']})")
-    elif eq.get("note"):
-        print(f"  effective dimension: {eq['note']}")
-    for name, o in s["observables"].items():
-        state = "settled" if o["settled"] else "NOT settled"
-        print(f"  {name:18s} equilibrium {o['equilibrium']:+.5f} +- {o['equilibrium_err']:.1e}   "
-              f"sigma^2 {o['temporal_variance']:.2e}   t_relax {o['relaxation_time']:.3g}   ({state})")
-        extra = []
-        if "diagonal_ensemble" in o:
-            extra.append(f"diagonal ensemble {o['diagonal_ensemble']:+.5f}")
-        if o.get("bound") is not None:
-            extra.append(f"bound on sigma^2 {o['bound']:.3g}")
-        if o.get("canonical") is not None:
-            extra.append(f"canonical {o['canonical']:+.5f}")
-        if o.get("microcanonical") is not None:
-            extra.append(f"microcanonical {o['microcanonical']:+.5f}")
-        if extra:
-            print("      " + "; ".join(extra))
+    sectors = s.get("symmetry_sectors") or {}
+    split = f" split into {len(sectors['sectors'])} symmetry sectors" if sectors.get("sectors") else ""
+    print(f"  L = {s['sites']}, {s['basis']['kind']} basis, dimension {s['basis']['dimension']:,}{split}; "
+          f"{s['method']} (tolerance {s['tolerance']:g}); initial energy {fmt(s['initial_energy'], digits=6)}")
+    print("\n".join(headline_text(relax_headline(s))))
     print(f"  results: {result.folder}/ (results.h5, summary.json, report.html)")

@@ -14,7 +14,7 @@ def add_parser(subparsers) -> None:
     p.add_argument("--out", default=None, metavar="FOLDER", help="run folder (default: runs/sweep-<timestamp>); "
                    "rerunning into the same folder skips sizes already done")
     p.add_argument("--target", type=int, default=None, metavar="L", help="chain length to extrapolate to")
-    p.add_argument("--realizations", type=int, default=1, metavar="N", help="disorder realisations per size")
+    p.add_argument("--realizations", type=int, default=1, metavar="N", help="disorder realizations per size")
     g = p.add_mutually_exclusive_group()
     g.add_argument("--workers", type=int, default=None, metavar="N", help="workers of the embedded local cluster")
     g.add_argument("--scheduler", default=None, metavar="ADDRESS", help="connect to a running Dask scheduler")

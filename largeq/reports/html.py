@@ -43,6 +43,14 @@ th,td{text-align:left;padding:.2em .5em;border-bottom:1px solid #eee;vertical-al
 td.num{font-family:ui-monospace,Menlo,Consolas,monospace;white-space:nowrap}
 th{background:#f3f3f3}
 p{margin:.3em 0 .6em}
+table.wide{margin-top:.6em}
+.headline{border:2px solid #4a7;background:#f6fff8}
+.headline table{font-size:.95em}
+.headline td.label{font-weight:600;white-space:nowrap}
+.headline tr.notsettled td.label{color:#b30}
+pre{background:#f5f5f5;border:1px solid #e3e3e3;padding:.5em;overflow-x:auto;font-size:.85em}
+ul.terms{font-family:ui-monospace,Menlo,Consolas,monospace;font-size:.85em}
+span.num{font-family:ui-monospace,Menlo,Consolas,monospace}
 @media (max-width:900px){.grid{grid-template-columns:1fr}}
 """
 
@@ -62,12 +70,23 @@ class Section:
         third entry is shown as ``value ± error``, a string as a comment.
     paragraphs : sequence of str
         Free text shown above the grid.
+    items : sequence of str
+        A bulleted list (shown in a fixed-width font, e.g. the Hamiltonian's terms).
+    preformatted : str, optional
+        Text shown verbatim (escaped), e.g. the scenario TOML.
+    columns, rows : sequences, optional
+        A full-width table with a header row (``columns``) under the plots, one row per entry of
+        ``rows`` (cells are formatted with :func:`format_number`).
     """
 
     heading: str
     images: Sequence[str] = ()
     table: Sequence[Sequence[Any]] = ()
     paragraphs: Sequence[str] = field(default_factory=tuple)
+    items: Sequence[str] = ()
+    preformatted: str | None = None
+    columns: Sequence[str] = ()
+    rows: Sequence[Sequence[Any]] = ()
 
 
 def _is_number(x: Any) -> bool:
@@ -167,18 +186,53 @@ def _row(row: Sequence[Any]) -> str:
 def _section(sec: Section, folder: Path) -> str:
     parts = ["<section>", f"<h2>{html.escape(sec.heading)}</h2>"]
     parts += [f"<p>{html.escape(p)}</p>" for p in sec.paragraphs]
+    if sec.items:
+        parts.append('<ul class="terms">' + "".join(f"<li>{html.escape(i)}</li>" for i in sec.items) + "</ul>")
+    if sec.preformatted is not None:
+        parts.append(f"<pre>{html.escape(sec.preformatted)}</pre>")
     figs = "".join(_image_tag(src, folder) for src in sec.images)
     table = ""
     if sec.table:
         rows = "".join(_row(r) for r in sec.table)
-        table = ("<table><thead><tr><th>quantity</th><th>value</th><th>error / note</th>"
-                 f"</tr></thead><tbody>{rows}</tbody></table>")
+        if all(len(r) < 3 or r[2] in (None, "") for r in sec.table):
+            rows = rows.replace("<td></td></tr>", "</tr>")
+            head = "<th>quantity</th><th>value</th>"
+        else:
+            head = "<th>quantity</th><th>value</th><th>error / note</th>"
+        table = f"<table><thead><tr>{head}</tr></thead><tbody>{rows}</tbody></table>"
     if figs and table:
         parts.append(f'<div class="grid"><div class="figs">{figs}</div><div>{table}</div></div>')
     elif figs or table:
         parts.append(f'<div class="figs">{figs}</div>' if figs else table)
+    if sec.columns:
+        head = "".join(f"<th>{html.escape(str(c))}</th>" for c in sec.columns)
+        body = "".join("<tr>" + "".join(f'<td class="num">{html.escape(format_number(c))}</td>' if _is_number(c)
+                                        else f"<td>{html.escape(str(c))}</td>" for c in r) + "</tr>"
+                       for r in sec.rows)
+        parts.append(f'<table class="wide"><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>')
     parts.append("</section>")
     return "\n".join(parts)
+
+
+def _headline(lines) -> str:
+    """The answer block: one row per headline line, numbers tagged with their summary key."""
+    rows = []
+    for ln in lines:
+        cls = ' class="notsettled"' if ln.status == "not settled" else ""
+        cells = []
+        for part in ln.parts:
+            if hasattr(part, "key"):
+                attrs = ""
+                if part.key is not None:
+                    attrs += f' data-key="{html.escape(part.key, quote=True)}"'
+                if part.value is not None:
+                    attrs += f' data-value="{float(part.value)!r}"'
+                cells.append(f'<span class="num"{attrs}>{html.escape(part.text)}</span>')
+            else:
+                cells.append(html.escape(str(part)))
+        rows.append(f'<tr{cls}><td class="label">{html.escape(ln.label)}</td><td>{"".join(cells)}</td></tr>')
+    return ('<section class="headline" id="answer"><h2>The answer</h2><table><tbody>'
+            + "".join(rows) + "</tbody></table></section>")
 
 
 def write_report(
@@ -187,6 +241,7 @@ def write_report(
     title: str,
     sections: Sequence[Section],
     subtitle: str | None = None,
+    headline: Sequence[Any] | None = None,
 ) -> Path:
     """Write a one-page self-contained HTML report.
 
@@ -201,6 +256,8 @@ def write_report(
         Blocks shown in order.
     subtitle : str, optional
         One line under the title (defaults to the UTC creation time).
+    headline : sequence of reports.headline.HeadlineLine, optional
+        The answer, shown first (numbers carry ``data-key``/``data-value`` attributes).
 
     Returns
     -------
@@ -210,6 +267,8 @@ def write_report(
     folder = path.parent
     sub = subtitle if subtitle is not None else f"written {utc_timestamp()} by largeq"
     body = "\n".join(_section(s, folder) for s in sections)
+    if headline:
+        body = _headline(headline) + "\n" + body
     page = (
         "<!DOCTYPE html>\n<html lang=\"en\">\n<head>\n<meta charset=\"utf-8\">\n"
         '<meta name="viewport" content="width=device-width, initial-scale=1">\n'

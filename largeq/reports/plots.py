@@ -10,10 +10,12 @@ from __future__ import annotations
 
 import functools
 import os
+import textwrap
 from pathlib import Path
 from typing import Any, Mapping, Sequence
 
 import matplotlib
+import matplotlib.ticker
 import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
@@ -28,6 +30,7 @@ __all__ = [
     "plot_spectra",
     "plot_thermal",
     "plot_versus_size",
+    "plot_panels_versus_size",
 ]
 
 TIME_LABEL = "time t (1/J)"
@@ -55,8 +58,8 @@ def _styled(func):
     return wrapper
 
 
-def _figure(nrows: int = 1, *, height: float = 3.2, sharex: bool = True):
-    fig = Figure(figsize=(6.4, height * nrows))
+def _figure(nrows: int = 1, *, height: float = 3.2, sharex: bool = True, width: float = 8.4):
+    fig = Figure(figsize=(width, height * nrows))
     FigureCanvasAgg(fig)
     axes = fig.subplots(nrows, 1, sharex=sharex, squeeze=False)[:, 0]
     return fig, list(axes)
@@ -67,7 +70,7 @@ def _save(fig: Figure, path: str | os.PathLike) -> Path:
     tmp = temp_path_for(path)
     try:
         fig.tight_layout()
-        fig.savefig(tmp, format="png", dpi=DPI)
+        fig.savefig(tmp, format="png", dpi=DPI, bbox_inches="tight", pad_inches=0.12)
         os.replace(tmp, path)
     except BaseException:
         tmp.unlink(missing_ok=True)
@@ -76,6 +79,50 @@ def _save(fig: Figure, path: str | os.PathLike) -> Path:
         fig.clear()
     fsync_dir(path.parent)
     return path
+
+
+def _legend_outside(ax, **kw) -> None:
+    """Legend to the right of the axes, never over the data."""
+    handles, labels = ax.get_legend_handles_labels()
+    if handles:
+        ax.legend(handles, labels, loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0, **kw)
+
+
+def _wrap(text: str, width: int) -> str:
+    """Break a long title at a natural place (before '(' or after ':' / ';'), else by words."""
+    if len(text) <= width:
+        return text
+    cuts = [i for i in range(1, len(text)) if text[i - 1:i + 1] in (" (", ": ", "; ") and i <= width]
+    if cuts:
+        i = cuts[-1]
+        head, tail = text[:i].rstrip(), text[i:].lstrip()
+        return head + "\n" + _wrap(tail, width)
+    return textwrap.fill(text, width=width, break_on_hyphens=False)
+
+
+def _title(target, text: str | None, width: int = 72) -> None:
+    """A title wrapped onto as many lines as it needs (never cut)."""
+    if text:
+        wrapped = _wrap(str(text), width)
+        if isinstance(target, Figure):
+            target.suptitle(wrapped, fontsize=10)
+        else:
+            target.set_title(wrapped, fontsize=10)
+
+
+def _integer_ticks(ax, values) -> None:
+    """Tick marks at the (integer) chain lengths themselves."""
+    v = np.unique(np.asarray(values, float)[np.isfinite(values)])
+    if v.size and np.allclose(v, np.round(v)):
+        step = max(1, int(np.ceil(v.size / 10)))
+        ax.set_xticks(v[::step])
+        ax.set_xticklabels([str(int(x)) for x in v[::step]])
+        ax.xaxis.set_minor_locator(matplotlib.ticker.NullLocator())
+
+
+#: line styles that tell curves apart even when they lie on top of each other
+LINESTYLES = ["-", (0, (5, 2)), (0, (1, 1.5)), (0, (6, 2, 1, 2)), (0, (3, 1, 1, 1, 1, 1)), (0, (8, 3))]
+MARKERS = "osD^vP*X"
 
 
 def _real(values: Any) -> np.ndarray:
@@ -102,11 +149,14 @@ def plot_relaxation(
     *,
     running_average: Mapping[str, Sequence[float]] | None = None,
     equilibrium: Mapping[str, tuple[float, float]] | None = None,
-    window: tuple[float, float] | None = None,
+    window: tuple[float, float] | Mapping[str, tuple[float, float]] | None = None,
     thermal: Mapping[str, Mapping[str, float]] | None = None,
+    references: Mapping[str, Mapping[str, float]] | None = None,
+    known: Mapping[str, tuple[str, Sequence[float], Sequence[float]]] | None = None,
+    equilibrium_label: str = "late-window mean ± σ",
     title: str | None = None,
 ) -> Path:
-    """Relaxation curves ⟨A(t)⟩, one stacked panel per observable.
+    """Relaxation curves ⟨A(t)⟩, one stacked panel per observable, with their reference values.
 
     Parameters
     ----------
@@ -119,13 +169,20 @@ def plot_relaxation(
     running_average : mapping of name to array_like, optional
         Running time average (1/t)∫⟨A⟩dt, drawn dashed.
     equilibrium : mapping of name to (value, band_halfwidth), optional
-        Equilibrium value ⟨A⟩_∞ drawn as a line with a shaded band ±halfwidth (e.g. σ_A).
-    window : (t0, t1), optional
-        Late-time window used for averages, shaded grey.
+        The late-window mean drawn as a line with a shaded band ±halfwidth (σ_A), labelled
+        ``equilibrium_label``.
+    window : (t0, t1) or mapping of name to (t0, t1), optional
+        Late-time window used for averages, shaded light blue.
+    references : mapping of name to {label: value}, optional
+        Reference values drawn as horizontal lines with one fixed style per label:
+        "diagonal ensemble" (solid black), "canonical" (dotted red), "microcanonical"
+        (dash-dot purple); other labels get further styles.
     thermal : mapping of name to {label: value}, optional
-        Thermal reference values (e.g. ``{"canonical": 0.1}``), drawn as dotted lines.
+        Older name for ``references`` (merged into it).
+    known : mapping of name to (label, t, value), optional
+        A known analytic curve (e.g. a free-fermion result), drawn dashed green.
     title : str, optional
-        Figure title.
+        Figure title (wrapped, never cut).
 
     Returns
     -------
@@ -135,34 +192,69 @@ def plot_relaxation(
     names = list(curves)
     if not names:
         raise ValueError("no curves to plot")
-    fig, axes = _figure(len(names), height=2.4)
-    thermal_styles = [":", (0, (5, 2, 1, 2)), (0, (1, 3)), (0, (3, 1, 1, 1, 1, 1))]
-    for ax, name, color in zip(axes, names, _colors(len(names))):
-        ax.plot(t, _real(curves[name]), color=color, lw=1.2, label=name)
+    refs: dict[str, dict[str, float]] = {}
+    for source in (references or {}, thermal or {}):
+        for name, d in source.items():
+            refs.setdefault(name, {}).update(d)
+    fig, axes = _figure(len(names), height=2.5)
+    ref_styles = {"diagonal ensemble": ("k", "-", 1.3), "canonical": ("tab:red", (0, (1, 1.2)), 1.6),
+                  "microcanonical": ("tab:purple", (0, (6, 2, 1, 2)), 1.3)}
+    extra_styles = [("tab:brown", (0, (3, 1, 1, 1, 1, 1)), 1.2), ("tab:olive", (0, (8, 3)), 1.2)]
+    for ax, name in zip(axes, names):
+        color = "tab:blue"  # one panel per observable: the curve is always blue, the references keep their styles
+        win = window.get(name) if isinstance(window, Mapping) else window
+        if win is not None and all(np.isfinite(win)):
+            ax.axvspan(float(win[0]), float(win[1]), color="#cfe3f7", alpha=0.45, lw=0, label="averaging window")
+        if equilibrium and name in equilibrium:
+            value, half = equilibrium[name]
+            if value is not None and np.isfinite(value):
+                if half is not None and np.isfinite(half) and half > 0:
+                    ax.axhspan(float(value) - half, float(value) + half, color="tab:orange", alpha=0.22, lw=0)
+                ax.axhline(float(value), color="tab:orange", lw=1.1, label=equilibrium_label)
+        ax.plot(t, _real(curves[name]), color=color, lw=1.2, label="⟨A(t)⟩")
         if running_average and name in running_average:
             ax.plot(t, _real(running_average[name]), color=color, ls="--", lw=1.0,
                     alpha=0.8, label="running average")
-        if equilibrium and name in equilibrium:
-            value, half = equilibrium[name]
-            ax.axhline(float(value), color="k", lw=0.9, label="⟨A⟩∞ (equilibrium)")
-            if half is not None and np.isfinite(half) and half > 0:
-                ax.axhspan(float(value) - half, float(value) + half, color="k", alpha=0.12,
-                           lw=0, label="± band")
-        if window is not None:
-            ax.axvspan(float(window[0]), float(window[1]), color="tab:gray", alpha=0.12, lw=0,
-                       label="late window")
-        if thermal and name in thermal:
-            for i, (label, value) in enumerate(thermal[name].items()):
-                if value is None or not np.isfinite(value):
-                    continue
-                ax.axhline(float(value), color="tab:red", lw=1.0,
-                           ls=thermal_styles[i % len(thermal_styles)], label=label)
-        ax.set_ylabel("⟨A(t)⟩")
-        ax.legend(loc="best", title=None, ncols=2)
+        if known and name in known:
+            label, tk, yk = known[name]
+            ax.plot(_real(tk), _real(yk), color="tab:green", ls=(0, (4, 2)), lw=1.3, label=label)
+        k = 0
+        for label, value in refs.get(name, {}).items():
+            if value is None or not np.isfinite(value):
+                continue
+            if label in ref_styles:
+                c, ls, lw = ref_styles[label]
+            else:
+                c, ls, lw = extra_styles[k % len(extra_styles)]
+                k += 1
+            ax.axhline(float(value), color=c, lw=lw, ls=ls, label=label)
+        ax.set_ylabel(name)
+    # the styles are the same in every panel: one legend, beside the first panel, lists them all
+    handles, labels = {}, []
+    for ax in axes:
+        for h, lab in zip(*ax.get_legend_handles_labels()):
+            if lab not in handles:
+                handles[lab] = h
+                labels.append(lab)
+    axes[0].legend([handles[lab] for lab in labels], labels, loc="upper left", bbox_to_anchor=(1.01, 1.0),
+                   borderaxespad=0.0)
     axes[-1].set_xlabel(TIME_LABEL)
-    if title:
-        axes[0].set_title(title)
+    _title(axes[0], title)
     return _save(fig, path)
+
+
+def _same_curves(arrays: Mapping[str, np.ndarray]) -> list[list[str]]:
+    """Names grouped by identical curves (to draw each once, labelled with all its names)."""
+    groups: list[list[str]] = []
+    for name, arr in arrays.items():
+        for g in groups:
+            ref = arrays[g[0]]
+            if ref.shape == arr.shape and np.allclose(ref, arr, rtol=1e-9, atol=1e-14, equal_nan=True):
+                g.append(name)
+                break
+        else:
+            groups.append([name])
+    return groups
 
 
 @_styled
@@ -172,9 +264,14 @@ def plot_distance(
     distances: Mapping[str, Sequence[float]],
     *,
     fluctuation_level: Mapping[str, float] | None = None,
+    bound_level: Mapping[str, float] | None = None,
     title: str | None = None,
 ) -> Path:
     """Distance to equilibrium d(t) = (⟨A(t)⟩ − ⟨A⟩∞)² on a log axis.
+
+    Identical curves (e.g. a site magnetization and the staggered one on a ring) are drawn
+    once and labelled with every name; each observable keeps its colour and line style, and
+    its σ_A² level is drawn in the same colour, dashed.
 
     Parameters
     ----------
@@ -186,6 +283,8 @@ def plot_distance(
         d(t) per observable; non-positive values are left as gaps.
     fluctuation_level : mapping of name to float, optional
         Temporal fluctuation σ_A² per observable, drawn as a dashed horizontal line.
+    bound_level : mapping of name to float, optional
+        Upper bound on σ_A² per observable (e.g. from d_eff), drawn dotted in the same colour.
     title : str, optional
 
     Returns
@@ -193,19 +292,26 @@ def plot_distance(
     pathlib.Path
     """
     t = _real(times)
-    fig, (ax,) = _figure(1, height=3.4)
-    for name, color in zip(distances, _colors(len(distances))):
-        ax.plot(t, _positive(distances[name]), color=color, lw=1.0, label=f"d(t) {name}")
-        if fluctuation_level and name in fluctuation_level:
-            level = fluctuation_level[name]
+    fig, (ax,) = _figure(1, height=3.6)
+    arrays = {n: _real(d) for n, d in distances.items()}
+    groups = _same_curves(arrays)
+    for i, (group, color) in enumerate(zip(groups, _colors(len(groups)))):
+        label = " = ".join(group)
+        ax.plot(t, _positive(arrays[group[0]]), color=color, lw=1.1, ls=LINESTYLES[i % len(LINESTYLES)],
+                label=f"d(t) {label}")
+        if fluctuation_level and group[0] in fluctuation_level:
+            level = fluctuation_level[group[0]]
             if level is not None and np.isfinite(level) and level > 0:
-                ax.axhline(float(level), color=color, ls="--", lw=1.0, label=f"σ_A² {name}")
+                ax.axhline(float(level), color=color, ls=(0, (2, 2)), lw=1.0, alpha=0.9, label=f"σ² {label}")
+        if bound_level and group[0] in bound_level:
+            level = bound_level[group[0]]
+            if level is not None and np.isfinite(level) and level > 0:
+                ax.axhline(float(level), color=color, ls=(0, (0.8, 2.5)), lw=1.6, label=f"bound on σ² {label}")
     ax.set_yscale("log")
     ax.set_xlabel(TIME_LABEL)
-    ax.set_ylabel("d(t)")
-    ax.legend(loc="best")
-    if title:
-        ax.set_title(title)
+    ax.set_ylabel("d(t) = (⟨A(t)⟩ − late-window mean)²")
+    _legend_outside(ax)
+    _title(ax, title)
     return _save(fig, path)
 
 
@@ -243,15 +349,14 @@ def plot_survival(
     fig, (ax,) = _figure(1, height=3.4)
     ax.plot(t, _positive(survival), color="C0", lw=1.0, label="|⟨ψ|ψ(t)⟩|²")
     if plateau is not None and np.isfinite(plateau) and plateau > 0:
-        ax.axhline(float(plateau), color="C1", ls="--", lw=1.0, label="plateau")
+        ax.axhline(float(plateau), color="C1", ls="--", lw=1.0, label="late-time mean")
     if inverse_deff is not None and np.isfinite(inverse_deff) and inverse_deff > 0:
-        ax.axhline(float(inverse_deff), color="C2", ls=":", lw=1.3, label="1/d_eff")
+        ax.axhline(float(inverse_deff), color="k", ls=":", lw=1.5, label=f"1/d_eff = {inverse_deff:.3g}")
     ax.set_yscale("log")
     ax.set_xlabel(TIME_LABEL)
     ax.set_ylabel("survival probability")
-    ax.legend(loc="best")
-    if title:
-        ax.set_title(title)
+    _legend_outside(ax)
+    _title(ax, title)
     return _save(fig, path)
 
 
@@ -315,9 +420,9 @@ def plot_spectra(
     ax.patch.set_visible(False)
     h1, l1 = ax.get_legend_handles_labels()
     h2, l2 = ax2.get_legend_handles_labels()
-    ax.legend(h1 + h2, l1 + l2, loc="upper right")
-    if title:
-        ax.set_title(title)
+    ax2.set_zorder(0)
+    ax.legend(h1 + h2, l1 + l2, loc="upper left", bbox_to_anchor=(1.12, 1.0), borderaxespad=0.0)
+    _title(ax, title)
     return _save(fig, path)
 
 
@@ -375,10 +480,61 @@ def plot_thermal(
         ax.set_xscale("log")
     ax.set_xlabel(xlabel)
     ax.set_ylabel(ylabel)
-    ax.legend(loc="best")
-    if title:
-        ax.set_title(title)
+    _legend_outside(ax)
+    _title(ax, title)
     return _save(fig, path)
+
+
+def _log_labels(ax) -> None:
+    """Plain-number tick labels on a log y axis; minor ticks labelled only when it spans < 1.5 decades."""
+    lo, hi = ax.get_ylim()
+    plain = matplotlib.ticker.FuncFormatter(lambda v, _: f"{v:g}")
+    ax.yaxis.set_major_formatter(plain)
+    if lo > 0 and np.log10(hi / lo) < 1.5:
+        def minor(v, _):
+            mant = v / 10 ** np.floor(np.log10(v)) if v > 0 else 0
+            return f"{v:g}" if round(mant) in (2, 5) else ""
+        ax.yaxis.set_minor_formatter(matplotlib.ticker.FuncFormatter(minor))
+    else:
+        ax.yaxis.set_minor_formatter(matplotlib.ticker.NullFormatter())
+
+
+def _draw_versus_size(ax, L, series, *, logy=False, fit=None, bands=None, ylabel="value",
+                      xlabel="chain length L") -> None:
+    arrays = {label: _real(series[label][0]) for label in series}
+    groups = _same_curves(arrays)  # identical series drawn once, labelled with every name
+    colors = {}
+    for i, (group, color) in enumerate(zip(groups, _colors(len(groups)))):
+        vals, errs = series[group[0]]
+        yerr = None if errs is None else np.abs(_real(errs))
+        if yerr is not None and not np.any(np.isfinite(yerr)):
+            yerr = None
+        ax.errorbar(L, arrays[group[0]], yerr=yerr, color=color, marker=MARKERS[i % len(MARKERS)], ms=5,
+                    lw=0.9, ls=LINESTYLES[i % len(LINESTYLES)], capsize=3, label=" = ".join(group))
+        for label in group:
+            colors[label] = color
+    fits = dict(fit or {})
+    fit_groups = _same_curves({k: _real(v[1]) for k, v in fits.items()}) if fits else []
+    fit_colors = _colors(len(groups) + len(fit_groups))
+    for j, group in enumerate(fit_groups):
+        label = group[0]
+        xf, yf = fits[label]
+        # a fit takes the colour of the series whose name it contains, else its own
+        color = next((c for name, c in sorted(colors.items(), key=lambda kv: -len(kv[0])) if name in label),
+                     fit_colors[len(groups) + j])
+        ax.plot(_real(xf), _real(yf), ls=LINESTYLES[(j + 1) % len(LINESTYLES)], lw=1.2, color=color,
+                alpha=0.9, label=" = ".join(group))
+        if bands and label in bands:
+            xb, lo, hi = bands[label]
+            ax.fill_between(_real(xb), _real(lo), _real(hi), color=color, alpha=0.15, lw=0)
+    if logy:
+        ax.set_yscale("log")
+        _log_labels(ax)
+    ax.set_xlabel(xlabel)
+    ax.set_ylabel(ylabel)
+    if xlabel.startswith("chain length"):
+        _integer_ticks(ax, L)
+    _legend_outside(ax)
 
 
 @_styled
@@ -389,24 +545,30 @@ def plot_versus_size(
     *,
     logy: bool = False,
     fit: Mapping[str, tuple[Sequence[float], Sequence[float]]] | None = None,
+    bands: Mapping[str, tuple[Sequence[float], Sequence[float], Sequence[float]]] | None = None,
     xlabel: str = "chain length L",
     ylabel: str = "value",
     title: str | None = None,
 ) -> Path:
-    """Quantities against chain length (finite-size trends, estimate vs exact).
+    """One quantity against chain length (finite-size trends, estimate vs exact).
 
     Parameters
     ----------
     path : path-like
         Output PNG.
     sizes : array_like
-        Chain lengths L, shared by all series (use NaN for a missing value).
+        Chain lengths L, shared by all series (use NaN for a missing value); integer sizes get
+        one tick each.
     series : mapping of label to (values, errs)
-        Markers with error bars (``errs`` may be None).
+        Markers with error bars (``errs`` may be None); each series its own colour, marker and
+        line style.
     logy : bool
         Logarithmic y axis (e.g. for d_eff or σ_A).
     fit : mapping of label to (x, y), optional
-        Fitted or extrapolated curves drawn as dashed lines.
+        Fitted or extrapolated curves; a fit whose label contains a series' label takes that
+        series' colour.
+    bands : mapping of fit label to (x, low, high), optional
+        Uncertainty band of a fit (shaded).
     xlabel, ylabel : str
         Axis labels.
     title : str, optional
@@ -416,22 +578,47 @@ def plot_versus_size(
     pathlib.Path
     """
     L = _real(sizes)
-    fig, (ax,) = _figure(1, height=3.4)
-    markers = "osD^vP*X"
-    for i, (label, color) in enumerate(zip(series, _colors(len(series)))):
-        vals, errs = series[label]
-        y = _real(vals)
-        yerr = None if errs is None else np.abs(_real(errs))
-        ax.errorbar(L, y, yerr=yerr, color=color, marker=markers[i % len(markers)], ms=5,
-                    lw=0.8, capsize=3, label=label)
-    if fit:
-        for label, (xf, yf) in fit.items():
-            ax.plot(_real(xf), _real(yf), ls="--", lw=1.0, color="k", alpha=0.7, label=label)
-    if logy:
-        ax.set_yscale("log")
-    ax.set_xlabel(xlabel)
-    ax.set_ylabel(ylabel)
-    ax.legend(loc="best")
-    if title:
-        ax.set_title(title)
+    fig, (ax,) = _figure(1, height=3.6)
+    _draw_versus_size(ax, L, series, logy=logy, fit=fit, bands=bands, ylabel=ylabel, xlabel=xlabel)
+    _title(ax, title)
+    return _save(fig, path)
+
+
+@_styled
+def plot_panels_versus_size(
+    path: str | os.PathLike,
+    sizes: Sequence[float],
+    panels: Sequence[Mapping[str, Any]],
+    *,
+    xlabel: str = "chain length L",
+    title: str | None = None,
+) -> Path:
+    """Several quantities against chain length, one quantity (one unit) per stacked panel.
+
+    Parameters
+    ----------
+    path : path-like
+        Output PNG.
+    sizes : array_like
+        Chain lengths L shared by all panels.
+    panels : sequence of mappings
+        Each with ``series`` (as in :func:`plot_versus_size`) and optionally ``ylabel``,
+        ``logy``, ``fit`` and ``bands``.
+    xlabel : str
+    title : str, optional
+
+    Returns
+    -------
+    pathlib.Path
+    """
+    if not panels:
+        raise ValueError("no panels to plot")
+    L = _real(sizes)
+    fig, axes = _figure(len(panels), height=2.6)
+    for ax, panel in zip(axes, panels):
+        _draw_versus_size(ax, L, panel["series"], logy=panel.get("logy", False), fit=panel.get("fit"),
+                          bands=panel.get("bands"), ylabel=panel.get("ylabel", "value"), xlabel=xlabel)
+    for ax in axes[:-1]:
+        ax.set_xlabel("")
+    _title(axes[0], title)
     return _save(fig, path)

@@ -7,7 +7,7 @@ from pathlib import Path
 
 from largeq.scenario.spec import Scenario, ScenarioError, load_scenario
 
-__all__ = ["EXAMPLES_PACKAGE", "ScenarioNotFound", "builtin_examples", "resolve_scenario"]
+__all__ = ["EXAMPLES_PACKAGE", "ScenarioNotFound", "builtin_examples", "resolve_scenario", "examples_markdown"]
 
 EXAMPLES_PACKAGE = "largeq.scenario.builtin"
 
@@ -48,3 +48,12 @@ def resolve_scenario(arg: str, sites: int | None = None) -> Scenario:
     if sites is not None:
         scenario = scenario.with_length(sites)
     return scenario
+
+
+def examples_markdown() -> str:
+    """The built-in examples as a Markdown table (name, L, title): the list in README.md is this text."""
+    lines = ["| name | L | what it runs |", "| --- | --- | --- |"]
+    for name, path in sorted(builtin_examples().items()):
+        s = load_scenario(path)
+        lines.append(f"| `{name}` | {s.n_sites} | {s.title} |")
+    return "\n".join(lines) + "\n"

@@ -40,6 +40,7 @@ from largeq.reports import plots
 from largeq.reports.run_record import run_attributes
 from largeq.reports.store import (Quantity, atomic_write_text, make_run_folder, write_results,
                                   write_summary)
+from largeq.reports.headline import EXACT_ACCURACY, fmt, fmt_error
 from largeq.scenario.spec import scenario_to_toml
 from largeq.basis.blocks import symmetry_group
 from largeq.operators.vectors import vdot
@@ -214,6 +215,21 @@ def _pct(x):
     return "-" if x is None or not np.isfinite(x) else f"{100 * x:+.1f}%"
 
 
+def _error(estimate, exact, scale=None):
+    """Relative error in %, or the absolute difference when the exact value is (near) zero.
+
+    Near zero a relative error means nothing (an exact beta of 0 would give 10^14 %): the
+    difference is printed instead whenever |exact| is below ``scale`` (the estimate's own error
+    bar, or 1e-6 without one).
+    """
+    if estimate is None or exact is None or not (np.isfinite(estimate) and np.isfinite(exact)):
+        return "-"
+    small = scale if scale is not None and np.isfinite(scale) and scale > 0 else 1e-6
+    if abs(exact) <= small:
+        return f"{estimate - exact:+.1e} abs"
+    return _pct(_rel(estimate, exact))
+
+
 def format_table(row: dict) -> str:
     """The per-size table printed by the command (plain text)."""
     if row["status"] != "ok":
@@ -243,19 +259,19 @@ def format_table(row: dict) -> str:
     add("LDOS KS distance (damped)", "-", f"{row['ldos_ks']:.3g} ({row['ldos_ks_damped']:.1g})", "")
     add("DOS KS distance (damped)", "-", f"{row['dos_ks']:.3g} ({row['dos_ks_damped']:.1g})", "")
     add("beta at <H>", _fmt(row["beta_exact"]), f"{_fmt(row['beta_tpq'])} +- {row['beta_tpq_err']:.1g}",
-        _pct(_rel(row["beta_tpq"], row["beta_exact"])))
+        _error(row["beta_tpq"], row["beta_exact"], row["beta_tpq_err"]))
     for n, o in row["observables"].items():
-        add(f"<{n}>_inf (curve window)", _fmt(o["equilibrium_exact"]),
+        add(f"<{n}>_inf (curve window)", fmt(o["equilibrium_exact"], EXACT_ACCURACY),
             f"{_fmt(o['equilibrium_curve'])} +- {o['equilibrium_curve_err']:.1g}",
             f"{o['equilibrium_curve'] - o['equilibrium_exact']:+.1e}")
         add(f"sigma^2 {n} (curve window)", _fmt(o["variance_exact"], 3), _fmt(o["variance_curve"], 3),
-            _pct(_rel(o["variance_curve"], o["variance_exact"])))
+            _error(o["variance_curve"], o["variance_exact"]))
         add(f"sigma^2/bound {n}", _fmt(o["variance_over_bound"], 3), f"bound {_fmt(o['bound'], 3)}",
             "holds" if o["bound_holds"] else "VIOLATED")
-        add(f"canonical {n}", _fmt(o["canonical_exact"]),
+        add(f"canonical {n}", fmt(o["canonical_exact"], EXACT_ACCURACY),
             f"{_fmt(o['canonical_tpq'])} +- {o['canonical_tpq_err']:.1g}",
             f"{o['canonical_tpq'] - o['canonical_exact']:+.1e}")
-        add(f"microcanonical {n}", _fmt(o["microcanonical_exact"]),
+        add(f"microcanonical {n}", fmt(o["microcanonical_exact"], EXACT_ACCURACY),
             f"{_fmt(o['microcanonical_tpq'])} +- {o['microcanonical_tpq_err']:.1g}",
             f"{o['microcanonical_tpq'] - o['microcanonical_exact']:+.1e}")
     for w in row["warnings"]:
@@ -305,13 +321,18 @@ def _plots_and_report(folder: Path, scenario, rows: list) -> None:
         "d_eff exact": ([r["d_eff_exact"] for r in ok], None),
         "d_eff KPM estimate": ([r["d_eff_kpm"] for r in ok],
                                [0.5 * (r["d_eff_kpm_high"] - r["d_eff_kpm_low"]) for r in ok]),
-        "d_eff survival plateau": ([r["d_eff_plateau"] if r["d_eff_plateau"] is not None else np.nan for r in ok], None),
+        "d_eff survival plateau": ([r["d_eff_plateau"] if r["d_eff_plateau"] is not None else np.nan for r in ok],
+                                   [0.5 * (r["d_eff_plateau_high"] - r["d_eff_plateau_low"])
+                                    if r["d_eff_plateau"] is not None else np.nan for r in ok]),
     }
-    first = next(iter(ok[0]["observables"]))
-    series[f"σ² {first} exact"] = ([r["observables"][first]["variance_exact"] for r in ok], None)
-    series[f"σ² {first} curve"] = ([r["observables"][first]["variance_curve"] for r in ok], None)
-    plots.plot_versus_size(folder / "crosscheck.png", sizes, series, logy=True, ylabel="d_eff, σ²",
-                           title="estimates against exact diagonalization")
+    panels = [{"series": series, "logy": True, "ylabel": "d_eff"}]
+    for n in list(ok[0]["observables"])[:4]:  # one panel per observable (first four), one quantity per axis
+        panels.append({"series": {f"σ² {n} exact (infinite time)": ([r["observables"][n]["variance_exact"] for r in ok], None),
+                                  f"σ² {n} from the curve": ([r["observables"][n]["variance_curve"] for r in ok], None),
+                                  f"bound {n}": ([r["observables"][n]["bound"] for r in ok], None)},
+                       "logy": True, "ylabel": f"σ² of {n}"})
+    plots.plot_panels_versus_size(folder / "crosscheck.png", sizes, panels,
+                                  title=f"{scenario.title}: estimates against exact diagonalization")
     sections = [html.Section(
         "Estimates against exact values", images=["crosscheck.png"],
         paragraphs=["d_eff: KPM estimate (LDOS of the state, DOS of its symmetric subspace; "
@@ -323,6 +344,8 @@ def _plots_and_report(folder: Path, scenario, rows: list) -> None:
             ("d_eff KPM", html.format_number(r["d_eff_kpm"]),
              f"range {html.format_number(r['d_eff_kpm_low'])} .. {html.format_number(r['d_eff_kpm_high'])}; "
              f"error {_pct(r['d_eff_kpm_rel_error'])}"),
+            ("β at ⟨H⟩ exact / TPQ", fmt(r["beta_exact"], EXACT_ACCURACY, 5),
+             f"TPQ {fmt_error(r['beta_tpq'], r['beta_tpq_err'])}; difference {_error(r['beta_tpq'], r['beta_exact'], r['beta_tpq_err'])}"),
             ("d_eff survival plateau", html.format_number(r["d_eff_plateau"]) if r["d_eff_plateau"] else "-", ""),
             ("<r>", html.format_value_error(r["level_ratio"], r["level_ratio_err"]) if r["level_ratio"] is not None else "-",
              r["level_block"]),
@@ -331,12 +354,14 @@ def _plots_and_report(folder: Path, scenario, rows: list) -> None:
         ]
         for n, o in r["observables"].items():
             table += [
-                (f"<{n}>_inf exact / curve", html.format_number(o["equilibrium_exact"]),
-                 f"curve {html.format_number(o['equilibrium_curve'])} ± {html.format_number(o['equilibrium_curve_err'])}"),
-                (f"σ² {n} exact / curve", html.format_number(o["variance_exact"]),
-                 f"curve {html.format_number(o['variance_curve'])}; σ²/bound {html.format_number(o['variance_over_bound'])}"),
-                (f"canonical {n} exact / TPQ", html.format_number(o["canonical_exact"]),
-                 f"TPQ {html.format_number(o['canonical_tpq'])} ± {html.format_number(o['canonical_tpq_err'])}"),
+                (f"<{n}>_inf exact / curve", fmt(o["equilibrium_exact"], EXACT_ACCURACY, 5),
+                 f"curve {fmt_error(o['equilibrium_curve'], o['equilibrium_curve_err'])}"),
+                (f"σ² {n} exact / curve", fmt(o["variance_exact"], digits=3),
+                 f"curve {fmt(o['variance_curve'], digits=3)}; σ²/bound {fmt(o['variance_over_bound'], digits=3)}"),
+                (f"canonical {n} exact / TPQ", fmt(o["canonical_exact"], EXACT_ACCURACY, 5),
+                 f"TPQ {fmt_error(o['canonical_tpq'], o['canonical_tpq_err'])}"),
+                (f"microcanonical {n} exact / TPQ", fmt(o["microcanonical_exact"], EXACT_ACCURACY, 5),
+                 f"TPQ {fmt_error(o['microcanonical_tpq'], o['microcanonical_tpq_err'])}"),
             ]
         sections.append(html.Section(f"L = {r['sites']}", table=table,
                                      paragraphs=[r["subspace"]] + [f"warning: {w}" for w in r["warnings"]]))

@@ -54,8 +54,7 @@ def describe_scenario(scenario: Scenario) -> dict:
         f"  chain: L = {L}, {scenario.chain.boundary} boundary",
         f"  Hamiltonian: {len(H)} Pauli strings (S = sigma/2 couplings), e.g.",
         *[f"      {t}" for t in H.describe(max_terms=8)],
-        f"  symmetries of H: {', '.join(used) if used else 'none detected'}"
-        f"  (used: {'magnetization sector' if basis.is_sector else 'none'}; momentum/parity sectors are not used yet)",
+        "SYMMETRY_LINE",
         f"  initial state: {problem.start.label}",
         f"  basis: {basis.label}",
         f"      why: {problem.basis_reason}",
@@ -75,11 +74,17 @@ def describe_scenario(scenario: Scenario) -> dict:
     except MemoryRefusal as exc:
         plan = None
         lines.append(f"  symmetry sectors: would not fit ({exc})")
+    in_use = ["magnetization sector"] if basis.is_sector else []
+    if plan is not None:
+        in_use.append("momentum / reflection / spin-flip sectors for relax")
+    sym_line = (f"  symmetries of H: {', '.join(used) if used else 'none detected'}"
+                f"  (used: {', '.join(in_use) if in_use else 'none'})")
+    lines[lines.index("SYMMETRY_LINE")] = sym_line
     if plan is not None:
         secs = [(c.sector.label, int(c.sector.dim), float(c.weight)) for c in plan["components"]]
         data["symmetry_sectors"] = {"sectors": secs, "note": plan["note"], "forecast": plan["forecast"].as_dict()}
         lines.append("  relax will evolve in symmetry sectors:")
-        lines.extend(f"      {lab}: dimension {dim:,}, weight {w:.4g}" for lab, dim, w in secs)
+        lines.extend(f"      {lab}: weight {w:.4g}" for lab, dim, w in secs)  # the label states the dimension
         lines.append(f"      forecast {format_bytes(plan['forecast'].total_bytes)} ({plan['forecast'].note})")
     elif sym["translation"] and problem.start.bits is not None:
         lines.append("  symmetry sectors: not used (they need diagonal observables only and the Chebyshev method)")

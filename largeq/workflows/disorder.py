@@ -1,15 +1,15 @@
-"""Disorder averages: N realisations of a scenario with random fields, each with its own recorded seed.
+"""Disorder averages: N realizations of a scenario with random fields, each with its own recorded seed.
 
-Seeds.  The realisation seeds are derived deterministically from the scenario's own seed (the preset's
-``seed`` or the random field's ``seed``) with ``numpy.random.SeedSequence(base).spawn(N)``; realisation k gets
+Seeds.  The realization seeds are derived deterministically from the scenario's own seed (the preset's
+``seed`` or the random field's ``seed``) with ``numpy.random.SeedSequence(base).spawn(N)``; realization k gets
 ``spawn(N)[k].generate_state(1)[0]`` (a 32-bit integer, written into its scenario).  Asking for more
-realisations later keeps the first ones: SeedSequence children do not depend on N.
+realizations later keeps the first ones: SeedSequence children do not depend on N.
 
-Statistics.  For every number x_k over realisations k = 1..N: the mean, the standard error of the mean
+Statistics.  For every number x_k over realizations k = 1..N: the mean, the standard error of the mean
 std(x, ddof=1) / sqrt(N) and the spread std(x, ddof=1) (sample-to-sample fluctuation); curves point by point.
 
-``run_disorder_relaxation`` runs ``largeq.workflows.relax.run_relaxation`` once per realisation (sub-folders
-``realization-000`` ...; a rerun skips realisations already finished) and writes the aggregate
+``run_disorder_relaxation`` runs ``largeq.workflows.relax.run_relaxation`` once per realization (sub-folders
+``realization-000`` ...; a rerun skips realizations already finished) and writes the aggregate
 ``results.h5``, ``summary.json``, ``relaxation.png`` and ``report.html`` in the parent folder.
 """
 
@@ -48,15 +48,15 @@ def base_seed(scenario: Scenario) -> int:
         return int(scenario.model.param("seed"))
     fields = _random_fields(scenario)
     if not fields:
-        raise ScenarioError("field", None, "a random field (pattern = 'random') for disorder realisations",
+        raise ScenarioError("field", None, "a random field (pattern = 'random') for disorder realizations",
                             scenario.source)
     return int(fields[0].seed)
 
 
 def realization_seeds(seed: int, n: int) -> list[int]:
-    """Seeds of realisations 0..n-1 derived from ``seed`` (SeedSequence spawn; prefix-stable in n)."""
+    """Seeds of realizations 0..n-1 derived from ``seed`` (SeedSequence spawn; prefix-stable in n)."""
     if int(n) != n or n < 1:
-        raise ValueError(f"number of realisations must be an integer >= 1, got {n!r}")
+        raise ValueError(f"number of realizations must be an integer >= 1, got {n!r}")
     return [int(c.generate_state(1, np.uint32)[0]) for c in np.random.SeedSequence(int(seed)).spawn(int(n))]
 
 
@@ -67,7 +67,7 @@ def with_seed(scenario: Scenario, seed: int) -> Scenario:
     further random fields (other axes) get ``SeedSequence([seed, k])``-derived seeds (k = their order).
     """
     if not is_disordered(scenario):
-        raise ScenarioError("field", None, "a random field (pattern = 'random') for disorder realisations",
+        raise ScenarioError("field", None, "a random field (pattern = 'random') for disorder realizations",
                             scenario.source)
     data = scenario_to_dict(scenario)
     if scenario.model is not None and "seed" in data.get("model", {}):
@@ -93,10 +93,10 @@ def aggregate(values) -> dict:
 
 
 def aggregate_curves(curves) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(mean, standard error, spread) point by point of equal-length curves (rows = realisations)."""
+    """(mean, standard error, spread) point by point of equal-length curves (rows = realizations)."""
     a = np.asarray(curves, dtype=float)
     if a.ndim != 2 or a.shape[0] < 1:
-        raise ValueError(f"curves must be a 2-d array (realisations x times), got shape {a.shape}")
+        raise ValueError(f"curves must be a 2-d array (realizations x times), got shape {a.shape}")
     n = a.shape[0]
     mean = a.mean(axis=0)
     if n < 2:
@@ -121,9 +121,9 @@ OBS_KEYS = ("equilibrium", "equilibrium_err", "temporal_variance", "relaxation_t
 
 def run_disorder_relaxation(scenario: Scenario, n_realizations: int, folder=None, options=None, *,
                             echo=None) -> DisorderRun:
-    """Relaxation of ``n_realizations`` disorder realisations and their average (see the module docstring).
+    """Relaxation of ``n_realizations`` disorder realizations and their average (see the module docstring).
 
-    Each realisation is a complete ``relax`` run folder; realisations already finished in ``folder``
+    Each realization is a complete ``relax`` run folder; realizations already finished in ``folder``
     (their ``summary.json`` exists and their recorded seed matches) are not run again.
     """
     from largeq.workflows.relax import RelaxOptions, run_relaxation
@@ -143,12 +143,12 @@ def run_disorder_relaxation(scenario: Scenario, n_realizations: int, folder=None
             if attrs.get("scenario_toml") == scenario_to_toml(sc):
                 summaries.append(read_summary(sub / "summary.json"))
                 if echo:
-                    echo(f"  realisation {k} (seed {seed}): already done, kept")
+                    echo(f"  realization {k} (seed {seed}): already done, kept")
                 continue
         run = run_relaxation(sc, sub, options)
         summaries.append(run.summary)
         if echo:
-            echo(f"  realisation {k} (seed {seed}): {run.summary['wall_seconds']:.1f} s")
+            echo(f"  realization {k} (seed {seed}): {run.summary['wall_seconds']:.1f} s")
     summary = _aggregate_relax(scenario, out, seeds, summaries, time.perf_counter() - t0,
                                window_start=options.window_start)
     return DisorderRun(out, summary)
@@ -167,10 +167,10 @@ def _aggregate_relax(scenario, out: Path, seeds, summaries, wall, window_start=N
         m, se, sp = aggregate_curves([np.real(t["curves"][n]) for t in trees])
         curves[n] = (m, se, sp)
         tree_curves[n] = Quantity(m, "1", f"disorder mean of <{n}(t)>")
-        tree_curves[f"{n}_stderr"] = Quantity(se, "1", "standard error of the mean over realisations")
-        tree_curves[f"{n}_spread"] = Quantity(sp, "1", "standard deviation between realisations")
+        tree_curves[f"{n}_stderr"] = Quantity(se, "1", "standard error of the mean over realizations")
+        tree_curves[f"{n}_spread"] = Quantity(sp, "1", "standard deviation between realizations")
         tree_curves[f"{n}_realizations"] = Quantity(np.array([np.real(t["curves"][n]) for t in trees]), "1",
-                                                     "every realisation (rows)")
+                                                     "every realization (rows)")
     obs = {n: {key: aggregate([s["observables"][n][key] for s in summaries]) for key in OBS_KEYS} for n in names}
     ws = window_start_of(scenario, window_start)
     for n in names:
@@ -188,7 +188,7 @@ def _aggregate_relax(scenario, out: Path, seeds, summaries, wall, window_start=N
         "basis": summaries[0]["basis"], "method": summaries[0]["method"], "tolerance": summaries[0]["tolerance"],
         "wall_seconds": wall, "matvecs": int(sum(s["matvecs"] for s in summaries)),
         "observables": obs, "cost_per_realization": cost,
-        "statistics": "mean, stderr = std(ddof=1)/sqrt(N), spread = std(ddof=1) over realisations",
+        "statistics": "mean, stderr = std(ddof=1)/sqrt(N), spread = std(ddof=1) over realizations",
         "folders": [realization_folder(out, k).name for k in range(len(seeds))],
     }
     attrs = run_attributes("relax", scenario_to_toml(scenario), scenario.title, seeds=list(seeds),
@@ -200,23 +200,24 @@ def _aggregate_relax(scenario, out: Path, seeds, summaries, wall, window_start=N
     plots.plot_relaxation(out / "relaxation.png", times, {n: c[0] for n, c in curves.items()},
                           equilibrium={n: (obs[n]["equilibrium"]["mean"], obs[n]["equilibrium"]["spread"])
                                        for n in names},
-                          title=f"{scenario.title} (mean of {len(seeds)} realisations; band: spread)")
+                          equilibrium_label="late-window mean ± spread over realizations",
+                          title=f"{scenario.title} (mean of {len(seeds)} realizations)")
     rows = []
     for n in names:
         e = obs[n]["equilibrium"]
         v = obs[n]["temporal_variance"]
         rows.append((f"{n}: equilibrium value (mean ± s.e.)", e["mean"], e["stderr"]))
-        rows.append((f"{n}: spread between realisations", html.format_number(e["spread"]), ""))
+        rows.append((f"{n}: spread between realizations", html.format_number(e["spread"]), ""))
         rows.append((f"{n}: temporal variance σ² (mean ± s.e.)", v["mean"], v["stderr"]))
         ac = obs[n]["average_curve"]
         rows.append((f"{n}: relaxation time of the averaged curve", html.format_number(ac["relaxation_time"]),
                      ac["relaxation_time_definition"]))
     html.write_report(out / "report.html", title=scenario.title, subtitle=(
-        f"largeq {__version__}: disorder average of {len(seeds)} realisations, L = {summary['sites']}"), sections=[
+        f"largeq {__version__}: disorder average of {len(seeds)} realizations, L = {summary['sites']}"), sections=[
         html.Section("Disorder-averaged relaxation", images=["relaxation.png"], table=rows,
-                     paragraphs=["Shaded band: spread (standard deviation) between realisations; the standard "
+                     paragraphs=["Shaded band: spread (standard deviation) between realizations; the standard "
                                  "error of the mean is smaller by √N."]),
-        html.Section("Realisations", table=[(f"realisation {k}", f"seed {s}", realization_folder(out, k).name)
+        html.Section("Realizations", table=[(f"realization {k}", f"seed {s}", realization_folder(out, k).name)
                                             for k, s in enumerate(seeds)]),
     ])
     return summary

@@ -72,7 +72,9 @@ def equilibration_report(problem, times, survival, analyses, *, mode: str = "aut
 def _from_exact(problem, ex, analyses, energy, out, rng) -> None:
     s = out["summary"]
     s.update(method="exact diagonalization", d_eff=ex.d_eff, d_eff_range=[ex.d_eff, ex.d_eff],
-             how=f"dense diagonalization of {ex.subspace} (dimension {ex.dim:,}); degenerate levels grouped",
+             how=(f"dense diagonalization of {ex.subspace}"
+                  + ("" if f"dimension {ex.dim:,}" in ex.subspace else f" (dimension {ex.dim:,})")
+                  + "; degenerate levels grouped"),
              gap_degeneracy_N0=ex.gap_degeneracy, details=ex.summary())
     s["details"].pop("observables", None)
     th = None

@@ -356,8 +356,10 @@ def _verdict(f: dict, fits_mem: bool, d_sub: int, stab: int) -> dict:
 
 def format_forecast(f: dict) -> str:
     L = f["sites"]
+    dim_text = f"{f['basis_dimension']:,}"
+    dim_note = "" if dim_text in f["basis"] else f" (dimension {dim_text})"  # the label may already state it
     out = [f"{f['title']}: forecast for L = {L}",
-           f"  basis: {f['basis']} (dimension {f['basis_dimension']:,}); {f['basis_reason']}"]
+           f"  basis: {f['basis']}{dim_note}; {f['basis_reason']}"]
     sec = f["sectors"]
     touched = sec["sectors"]
     if len(touched) == 1:

@@ -17,17 +17,15 @@ from pathlib import Path
 
 import numpy as np
 
-from largeq import __version__
 from largeq.analysis.curves import analyse_curve
 from largeq.operators.problem import Problem, build_problem
 from largeq.engines.bounds import SpectralBounds, spectral_bounds
 from largeq.engines.propagate import evolve
 from largeq.engines.sector_evolution import advance_sectors
 from largeq.workflows.equilibration_step import equilibration_report
-from largeq.workflows.planning import available_bytes, check_fits, evolution_forecast, format_bytes
+from largeq.workflows.relax_report import known_curve_summary, write_relax_report
+from largeq.workflows.planning import available_bytes, check_fits, evolution_forecast
 from largeq.reports.progress import progress_bar
-from largeq.reports import html
-from largeq.reports import plots
 from largeq.reports.checkpoint import CHECKPOINT_NAME, Checkpointer, load_checkpoint
 from largeq.reports.run_record import run_attributes
 from largeq.reports.store import (Quantity, atomic_write_text, make_run_folder, write_results,
@@ -395,6 +393,7 @@ def _execute_sectors(problem: Problem, text: str, folder: Path, times, plan, opt
 def _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, matvecs, wall, captured,
             options, sectors: dict | None = None) -> dict:
     scenario = problem.scenario
+    t_eq = time.perf_counter()
     ws = window_start_of(scenario, options.window_start)
     analyses = {n: analyse_curve(times, rec.values[n], window_start=ws) for n in rec.names}
     eq = equilibration_report(problem, times, rec.survival, analyses, mode=options.equilibration,
@@ -404,6 +403,8 @@ def _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, m
         # the diagonal ensemble is known: the verdict must agree with it (see analysis.curves)
         analyses = {n: analyse_curve(times, rec.values[n], window_start=ws, exact_equilibrium=exact_de[n])
                     for n in rec.names}
+    t_eq = time.perf_counter() - t_eq
+    t_save = time.perf_counter()
     norm_drift = float(np.max(np.abs(rec.norm - 1.0)))
     energy_drift = float(np.max(np.abs(rec.energy - rec.energy[0])))
     obs_meta = {n: problem.observables[n] for n in rec.names}
@@ -499,9 +500,19 @@ def _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, m
             for n, a in analyses.items()
         },
         "equilibration": eq["summary"],
+        "time_grid": {"t_max": float(times[-1]), "points": int(len(times)),
+                      "step": float(times[1] - times[0]) if len(times) > 1 else None},
+        "seeds": attrs["seeds"],
+        "phase_seconds": {"evolution (with spectral bounds)": wall, "equilibrium analysis": t_eq},
     }
+    for n, kc in known_curve_summary(scenario, times, rec.values).items():
+        summary["observables"][n]["known_curve"] = kc
+    summary["phase_seconds"]["saving results"] = time.perf_counter() - t_save
     write_summary(folder / "summary.json", summary)
-    _plots_and_report(problem, folder, times, rec, analyses, summary, eq["rows"])
+    t_report = time.perf_counter()
+    write_relax_report(folder)  # the page shows the phases above; its own time is added to summary.json after
+    summary["phase_seconds"]["plots and report"] = time.perf_counter() - t_report
+    write_summary(folder / "summary.json", summary)
     return summary
 
 
@@ -513,49 +524,3 @@ def _field_values(problem):
 
 def _seeds(scenario) -> dict:
     return {f"field_{f.axis}": f.seed for f in scenario.fields if getattr(f, "seed", None) is not None}
-
-
-def _plots_and_report(problem, folder: Path, times, rec, analyses, summary, eq_rows) -> None:
-    names = rec.names
-    plots.plot_relaxation(
-        folder / "relaxation.png", times, {n: rec.values[n] for n in names},
-        running_average={n: a.running_average for n, a in analyses.items()},
-        equilibrium={n: (a.equilibrium, a.band_halfwidth) for n, a in analyses.items()},
-        window=(analyses[names[0]].window_start, analyses[names[0]].window_end),
-        title=problem.scenario.title,
-    )
-    plots.plot_distance(folder / "distance.png", times, {n: a.distance for n, a in analyses.items()},
-                        fluctuation_level={n: a.variance for n, a in analyses.items()})
-    plots.plot_survival(folder / "survival.png", times, rec.survival)
-    rows = []
-    for n, a in analyses.items():
-        rows.append((f"{n}: equilibrium value", html.format_value_error(a.equilibrium, a.equilibrium_err),
-                     f"window t = {a.window_start:.3g} .. {a.window_end:.3g}"))
-        rows.append((f"{n}: temporal variance σ²", html.format_number(a.variance), ""))
-        rows.append((f"{n}: relaxation time", html.format_number(a.relaxation_time),
-                     f"{a.status}; {a.relaxation_note}"))
-    sections = [
-        html.Section("Relaxation curves", images=["relaxation.png"], table=rows,
-                     paragraphs=[f"{n}: {a.verdict}" for n, a in analyses.items()]),
-        html.Section("Distance to equilibrium", images=["distance.png"],
-                     table=[(f"{n}: σ²", html.format_number(a.variance), "") for n, a in analyses.items()]),
-        html.Section("Effective dimension, fluctuation bound, thermal values",
-                     table=eq_rows or [("equilibration analysis", summary["equilibration"]["method"],
-                                        summary["equilibration"].get("note", ""))]),
-        html.Section("Survival probability", images=["survival.png"], table=[
-            ("initial energy ⟨H⟩", html.format_number(summary["initial_energy"]), ""),
-            ("energy drift", html.format_number(summary["energy_drift"]), ""),
-            ("norm drift", html.format_number(summary["norm_drift"]), ""),
-        ]),
-        html.Section("Run", table=[
-            ("basis", problem.basis.label,
-             summary["basis"]["reason"]),
-            ("initial state", problem.start.label, ""),
-            ("method", summary["method"], f"tolerance {summary['tolerance']:g}"),
-            ("matrix-vector products", str(summary["matvecs"]), ""),
-            ("wall time (s)", html.format_number(summary["wall_seconds"]), ""),
-            ("memory forecast", format_bytes(summary["memory_forecast_bytes"]), "peak, forecast before the run"),
-        ]),
-    ]
-    html.write_report(folder / "report.html", title=problem.scenario.title, sections=sections,
-                      subtitle=f"largeq {__version__}: relaxation of L = {problem.n_sites}")

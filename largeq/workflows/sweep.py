@@ -1,6 +1,6 @@
 """``largeq sweep``: one scenario over several chain lengths, as tasks on a Dask cluster, with finite-size fits.
 
-For each chain length L (and each disorder realisation when asked) one task measures:
+For each chain length L (and each disorder realization when asked) one task measures:
 
 * exact equilibration (``equilibration.exact_equilibration``: d_eff, diagonal-ensemble values, exact sigma^2,
   fluctuation bound) where the state's symmetric subspace fits a dense diagonalization (``--max-dim``);
@@ -12,7 +12,7 @@ For each chain length L (and each disorder realisation when asked) one task meas
 * cost: wall time, matrix-vector products (all of them, counted on the operator) and the peak resident
   memory of the task (sampled), next to the memory forecast checked before submission.
 
-Each finished task is saved at once (``sizes/L016.json`` + ``sizes/L016.h5``; with realisations
+Each finished task is saved at once (``sizes/L016.json`` + ``sizes/L016.h5``; with realizations
 ``L016-r003``); a rerun of the same command in the same folder skips tasks already saved for the same scenario
 and options.  The table (``table.csv`` and ``results.h5``), the fits of ``largeq.analysis.fits`` (ln d_eff = a + s L,
 ln sigma_A = b - kappa L, <A>_inf linear in 1/L), the extrapolation to ``--target`` with 1-sigma bands, the
@@ -63,7 +63,7 @@ class SweepOptions:
     target : int or None
         Chain length to extrapolate to (besides L -> infinity for equilibrium values).
     realizations : int
-        Disorder realisations per size (scenarios with random fields only).
+        Disorder realizations per size (scenarios with random fields only).
     max_dim : int
         Largest dense diagonalization; larger subspaces use the KPM estimate.
     n_moments, n_vectors : int
@@ -72,7 +72,7 @@ class SweepOptions:
         Compute canonical and microcanonical values.
     thermal_vectors : int
     seed : int
-        Seed of the random vectors (one child per size and realisation).
+        Seed of the random vectors (one child per size and realization).
     kpm_everywhere : bool
         Also estimate d_eff by KPM where the exact value is available (to compare).
     """
@@ -443,7 +443,7 @@ def _num(x):
 
 
 def sweep_table(sizes, tasks, rows: dict, observables) -> list[dict]:
-    """One row per size (realisations averaged: mean and standard error), flat keys for CSV."""
+    """One row per size (realizations averaged: mean and standard error), flat keys for CSV."""
     from largeq.workflows.disorder import aggregate
 
     table = []
@@ -491,8 +491,8 @@ def _errors(table, key):
 def fit_trends(table: list[dict], observables, target: int | None) -> dict:
     """Fits of d_eff, sigma_A and <A>_inf over L and extrapolations (see the module docstring).
 
-    With disorder realisations the standard errors weight the fit (errors taken as given); with one
-    realisation the points are exact or deterministic estimates and the parameter errors come from the scatter
+    With disorder realizations the standard errors weight the fit (errors taken as given); with one
+    realization the points are exact or deterministic estimates and the parameter errors come from the scatter
     about the line (chi^2 / dof).  Fits need at least 3 sizes.  The d_eff fit uses only exact values when at
     least 3 sizes have them.
     """
@@ -612,34 +612,42 @@ def _plots_and_report(out, scenario, table, fits, objs, names, options) -> None:
     series = {"d_eff": (np.array([r["d_eff"] for r in table]), err("d_eff"))}
     if any("d_eff_kpm" in r for r in table):
         series["d_eff (KPM)"] = (np.array([r.get("d_eff_kpm", np.nan) for r in table]), None)
-    fit = {}
+    fit, bands = {}, {}
     if "d_eff" in objs:
         v, lo, hi = objs["d_eff"].at(Lf)
         fit = {"fit ln d_eff = a + sL": (Lf, v)}
-    plots.plot_versus_size(out / "deff_vs_L.png", L, series, logy=True, fit=fit, ylabel="effective dimension d_eff",
-                           title=scenario.title)
-    series, fit = {}, {}
+        bands = {"fit ln d_eff = a + sL": (Lf, lo, hi)}
+    plots.plot_versus_size(out / "deff_vs_L.png", L, series, logy=True, fit=fit, bands=bands,
+                           ylabel="effective dimension d_eff", title=scenario.title)
+    series, fit, bands = {}, {}, {}
     for n in names:
         series[f"σ_A {n}"] = (np.array([r.get(f"{n}.sigma", np.nan) for r in table]), err(f"{n}.sigma"))
         if f"{n}.sigma" in objs:
-            fit[f"fit {n}"] = (Lf, objs[f"{n}.sigma"].at(Lf)[0])
-    plots.plot_versus_size(out / "sigma_vs_L.png", L, series, logy=True, fit=fit,
-                           ylabel="temporal fluctuation σ_A (late window)")
-    series, fit = {}, {}
+            v, lo, hi = objs[f"{n}.sigma"].at(Lf)
+            fit[f"fit σ_A {n}"] = (Lf, v)
+            bands[f"fit σ_A {n}"] = (Lf, lo, hi)
+    plots.plot_versus_size(out / "sigma_vs_L.png", L, series, logy=True, fit=fit, bands=bands,
+                           ylabel="temporal fluctuation σ_A (late window)", title=scenario.title)
+    series, fit, bands = {}, {}, {}
     x = 1.0 / L
     xf = np.linspace(0.0, x.max(), 50)
     for n in names:
         series[f"⟨{n}⟩∞"] = (np.array([r.get(f"{n}.equilibrium", np.nan) for r in table]),
                              np.array([r.get(f"{n}.equilibrium_err", np.nan) for r in table]))
         if f"{n}.equilibrium" in objs:
-            fit[f"fit {n}"] = (xf, objs[f"{n}.equilibrium"].fit.predict(xf)[0])
-    plots.plot_versus_size(out / "equilibrium_vs_invL.png", x, series, fit=fit, xlabel="1 / L",
-                           ylabel="equilibrium value (late window)")
-    plots.plot_versus_size(out / "cost_vs_L.png", L, {
-        "wall time (s)": (np.array([r["wall_seconds"] for r in table]), None),
-        "products / 100": (np.array([r["matvecs"] for r in table]) / 100, None),
-        "peak memory (MiB)": (np.array([r["peak_rss_bytes"] for r in table]) / 2**20, None)},
-        logy=True, ylabel="cost per task")
+            v, e = objs[f"{n}.equilibrium"].fit.predict(xf)
+            fit[f"fit ⟨{n}⟩∞"] = (xf, v)
+            bands[f"fit ⟨{n}⟩∞"] = (xf, v - e, v + e)
+    plots.plot_versus_size(out / "equilibrium_vs_invL.png", x, series, fit=fit, bands=bands, xlabel="1 / L",
+                           ylabel="late-window mean", title=scenario.title)
+    plots.plot_panels_versus_size(out / "cost_vs_L.png", L, [
+        {"series": {"wall time": (np.array([r["wall_seconds"] for r in table]), None)}, "logy": True,
+         "ylabel": "wall time (s)"},
+        {"series": {"matrix-vector products": (np.array([r["matvecs"] for r in table], float), None)},
+         "ylabel": "products"},
+        {"series": {"peak memory": (np.array([r["peak_rss_bytes"] for r in table]) / 2**20, None)}, "logy": True,
+         "ylabel": "peak memory (MiB)"},
+    ], title=f"{scenario.title}: cost per task")
     rows = []
     for key, t in fits["trends"].items():
         rows.append((f"{key}: {t['form']}", t["rate"], t["rate_err"]))

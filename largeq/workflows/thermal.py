@@ -24,11 +24,11 @@ what the main job's equilibrium values are compared against), ``thermal.png``, `
 from __future__ import annotations
 
 import dataclasses
-import textwrap
 import time
 from dataclasses import dataclass
 from pathlib import Path
 
+import matplotlib.ticker
 import numpy as np
 import scipy.interpolate
 
@@ -410,11 +410,14 @@ def _plot(path, canon, beta, title, energy):
                    ("matched β* = %.4g" % xm))
         if use_t:
             ax.set_xscale("log")
-        ax.legend(loc="best")
+            plain = matplotlib.ticker.FuncFormatter(lambda v, _: f"{v:g}")
+            ax.xaxis.set_major_formatter(plain)
+            ax.xaxis.set_minor_formatter(plain if x.max() / x.min() < 30 else matplotlib.ticker.NullFormatter())
+        plots._legend_outside(ax)
     ax1.set_ylabel("canonical ⟨A⟩")
     ax2.set_ylabel("energy (J)")
     ax2.set_xlabel("temperature T (J)" if use_t else "inverse temperature β (1/J)")
-    ax1.set_title(textwrap.fill(title, 72))
+    plots._title(ax1, title)
     return plots._save(fig, path)
 
 
