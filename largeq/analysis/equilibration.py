@@ -755,7 +755,7 @@ class ExactThermal:
 
 
 def exact_thermal_values(problem, energy: float, *, width: float | None = None, max_dim: int = MAX_DENSE_DIM,
-                         group: SymmetryGroup | None = None) -> ExactThermal:
+                         group: SymmetryGroup | None = None, progress=None) -> ExactThermal:
     """Canonical and microcanonical values from full diagonalization, block by block.
 
     Tr(A f(H)) = sum_b Tr(Q_b^dagger A Q_b f(H_b)) holds for every A because the ensemble is
@@ -770,6 +770,8 @@ def exact_thermal_values(problem, energy: float, *, width: float | None = None, 
     max_dim : int
         Largest block diagonalized.
     group : SymmetryGroup, optional
+    progress : callable, optional
+        Called as ``progress(i, n_blocks)`` after each block is diagonalized.
     """
     group = _group_or_none(problem, group)
     if group is None:
@@ -786,6 +788,8 @@ def exact_thermal_values(problem, energy: float, *, width: float | None = None, 
         for n, a in a_csr.items():
             ab = (blk.q.conj().T @ (a @ blk.q)).toarray()
             diags[n].append(np.real(np.einsum("im,im->m", v.conj(), ab @ v)))
+        if progress is not None:
+            progress(len(es), len(blocks))
     e = np.concatenate(es)
     order = np.argsort(e)
     e = e[order]

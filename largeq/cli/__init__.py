@@ -44,6 +44,11 @@ def main(argv=None) -> int:
             FileNotFoundError) as exc:
         print(f"largeq {args.command}: error: {exc}", file=sys.stderr)
         return 2
+    except OSError as exc:  # unwritable or read-only folders, full disks: the system's reason and the path
+        where = f" ({exc.filename})" if getattr(exc, "filename", None) else ""
+        print(f"largeq {args.command}: error: cannot write the run folder{where}: {exc.strerror or exc}",
+              file=sys.stderr)
+        return 2
     except KeyboardInterrupt:
         print(f"largeq {args.command}: interrupted; a run with checkpoints can be continued with --resume",
               file=sys.stderr)

@@ -14,6 +14,8 @@ from largeq.analysis.bounds import fluctuation_bound
 from largeq.analysis.equilibration import (DenseLimitError, estimate_deff, exact_equilibration,
                                            exact_thermal_values, thermal_values)
 from largeq.constants import ESTIMATE_MAX_DIM, MAX_DENSE_DIM
+from largeq.engines.threads import dense_linear_algebra
+from largeq.reports.progress import progress_bar
 
 __all__ = ["MODES", "ESTIMATE_MAX_DIM", "equilibration_report"]
 
@@ -30,10 +32,12 @@ def _finite(x):
 
 
 def equilibration_report(problem, times, survival, analyses, *, mode: str = "auto", seed: int = 0,
-                         energy: float) -> dict:
+                         energy: float, progress: bool | None = None) -> dict:
     """d_eff (exact or estimated, and how), bounds, sigma^2 / bound and thermal values per observable.
 
     Returns {"summary": dict for summary.json, "per_observable": {name: dict}, "rows": report rows}.
+    Dense diagonalizations run under the dense thread policy (:mod:`largeq.engines.threads`); ``progress``
+    shows a bar over the thermal values' symmetry blocks.
     """
     if mode not in MODES:
         raise ValueError(f"equilibration mode: got {mode!r}; allowed: {', '.join(MODES)}")
@@ -46,13 +50,14 @@ def equilibration_report(problem, times, survival, analyses, *, mode: str = "aut
     exact = None
     if mode == "exact" or (mode == "auto" and dim <= EXACT_AUTO_MAX_DIM):
         try:
-            exact = exact_equilibration(problem)
+            with dense_linear_algebra():
+                exact = exact_equilibration(problem)
         except DenseLimitError as exc:
             if mode == "exact":
                 raise
             out["summary"]["exact_note"] = str(exc)
     if exact is not None:
-        _from_exact(problem, exact, analyses, energy, out)
+        _from_exact(problem, exact, analyses, energy, out, progress)
         return out
     if mode == "estimate" or dim <= ESTIMATE_MAX_DIM:
         _from_estimate(problem, times, survival, analyses, energy, rng, out)
@@ -63,18 +68,28 @@ def equilibration_report(problem, times, survival, analyses, *, mode: str = "aut
     return out
 
 
-def _from_exact(problem, ex, analyses, energy, out) -> None:
+def _from_exact(problem, ex, analyses, energy, out, progress=None) -> None:
     s = out["summary"]
     s.update(method="exact diagonalization", d_eff=ex.d_eff, d_eff_range=[ex.d_eff, ex.d_eff],
              how=f"dense diagonalization of {ex.subspace} (dimension {ex.dim:,}); degenerate levels grouped",
              gap_degeneracy_N0=ex.gap_degeneracy, details=ex.summary())
     s["details"].pop("observables", None)
+    bar = progress_bar(None, f"thermal values L={problem.n_sites}", enabled=progress)
+
+    def on_block(i, n):
+        if bar._bar is not None and bar._bar.total != n:
+            bar._bar.total = n
+        bar.update(1)
+
     try:
-        th = exact_thermal_values(problem, energy)
+        with dense_linear_algebra():
+            th = exact_thermal_values(problem, energy, progress=on_block)
         s["thermal"] = {"method": "exact (all symmetry blocks of the basis)", "beta": th.beta, "width": th.width}
     except DenseLimitError as exc:
         th = None
         s["thermal"] = {"method": "skipped", "note": str(exc)}
+    finally:
+        bar.close()
     rows = out["rows"]
     rows.append(("effective dimension d_eff", f"{ex.d_eff:.5g}", s["how"]))
     rows.append(("largest gap degeneracy N(0)", str(ex.gap_degeneracy), ""))

@@ -141,7 +141,7 @@ def calibrate(scenario: Scenario, L: int, *, max_dim: int = CALIBRATION_DIM) -> 
 
 # --------------------------------------------------------------------------------------------- prediction
 def _block(dim, L, n_times, available, block):
-    from largeq.workflows.relax import choose_block
+    from largeq.workflows.planning import choose_block
 
     return int(block) if block else choose_block(dim, L, n_times, available, "chebyshev")
 
