@@ -389,11 +389,12 @@ def check_time_resolution(scenario, H) -> None:
 
 
 def plan_run(scenario, *, symmetry: str = "auto", block: int | None = None, available: int | None = None,
-             model_parts: dict | None = None) -> RunPlan:
+             model_parts: dict | None = None, check_times: bool = True) -> RunPlan:
     """The path ``relax`` takes for ``scenario`` and its memory, from counting alone (no basis tables, no
     enumeration of sectors, no state vector).  ``relax``, ``describe`` and ``forecast`` all call this.
 
-    ``model_parts`` may pass {"hamiltonian", "symmetries", "start", "observables"} already built.
+    ``model_parts`` may pass {"hamiltonian", "symmetries", "start", "observables"} already built;
+    ``check_times`` refuses output steps too short to resolve (:func:`check_time_resolution`).
     """
     from largeq.basis.spaces import basis_decision, basis_label, basis_table_bytes
     from largeq.model import build as model
@@ -411,7 +412,8 @@ def plan_run(scenario, *, symmetry: str = "auto", block: int | None = None, avai
     L = scenario.n_sites
     method = scenario.numerics.method
     n_times = scenario.time.n_points
-    check_time_resolution(scenario, H)
+    if check_times:
+        check_time_resolution(scenario, H)
     requested = scenario.sector.up_spins
     requested = None if requested == "auto" else int(requested)
     try:
@@ -466,3 +468,14 @@ def plan_run(scenario, *, symmetry: str = "auto", block: int | None = None, avai
 
 
 __all__ += ["RunPlan", "SectorCount", "plan_run", "check_time_resolution", "count_state_sectors", "choose_block", "sector_memory"]
+
+
+def check_basis_fits(scenario, forecast_for, available: int | None = None) -> None:
+    """Refuse before any table is built: ``forecast_for(dimension, n_sites)`` is the command's memory
+    forecast for the basis ``build_problem`` would build (found by counting)."""
+    plan = plan_run(scenario, symmetry="off", available=available, check_times=False)
+    check_fits(forecast_for(plan.basis_dimension, plan.n_sites), n_sites=plan.n_sites, up_spins=plan.up_spins,
+               available=available)
+
+
+__all__ += ["check_basis_fits"]
