@@ -12,7 +12,6 @@ from __future__ import annotations
 
 import hashlib
 import json
-import time
 from dataclasses import dataclass, replace
 from pathlib import Path
 
@@ -94,8 +93,9 @@ def check_relax_options(o: RelaxOptions) -> None:
     from largeq.workflows.equilibration_step import MODES
 
     if o.checkpoint_seconds is not None and not (isinstance(o.checkpoint_seconds, (int, float))
-                                                 and np.isfinite(o.checkpoint_seconds) and o.checkpoint_seconds > 0):
-        raise OptionError(f"checkpoint interval: got {o.checkpoint_seconds!r}; allowed: a number of seconds > 0")
+                                                 and np.isfinite(o.checkpoint_seconds) and o.checkpoint_seconds >= 0):
+        raise OptionError(f"checkpoint interval: got {o.checkpoint_seconds!r}; allowed: a number of seconds >= 0 "
+                          f"(0: at every block)")
     if o.block is not None and (isinstance(o.block, bool) or not isinstance(o.block, (int, np.integer)) or o.block < 1):
         raise OptionError(f"block: got {o.block!r}; allowed: an integer >= 1 (output times per Chebyshev expansion)")
     if isinstance(o.seed, bool) or not isinstance(o.seed, (int, np.integer)) or o.seed < 0:
@@ -282,7 +282,7 @@ def _execute(problem: Problem, text: str, folder: Path, times, block, forecast, 
     op = problem.operator
     psi_start, captured = problem.initial_vector()
     rec = _Recorder(problem, psi_start, len(times))
-    start_index, elapsed_before, matvecs_before = 0, 0.0, 0
+    start_index, matvecs_before = 0, 0
     psi = psi_start
     loaded = load_checkpoint(folder, expect_fingerprint=fp) if resume else None
     if loaded is not None:
