@@ -87,6 +87,8 @@ def describe_scenario(scenario: Scenario, *, available: int | None = None) -> di
         lines.append(f"      forecast {format_bytes(plan.forecast.total_bytes)} ({plan.forecast.note})")
     else:
         lines.append(f"  relax will evolve in the {plan.path} basis: {plan.sectors_refused or plan.basis_reason}")
+    lines.append(f"  time forecast: about {plan.products:,} products of dimension {plan.dimension:,}; roughly "
+                 f"{_human_seconds(plan.seconds_estimate)} (uncalibrated; 'largeq forecast' measures this machine)")
     if plan.fits:
         lines.append(f"  verdict: the time evolution fits in this machine's memory "
                      f"({format_bytes(plan.forecast.total_bytes)} of {format_bytes(avail)})")
@@ -94,3 +96,15 @@ def describe_scenario(scenario: Scenario, *, available: int | None = None) -> di
         lines.append(f"  verdict: the time evolution does NOT fit in this machine's memory "
                      f"({format_bytes(plan.forecast.total_bytes)} needed, {format_bytes(avail)} available)")
     return {"text": "\n".join(lines), "data": data}
+
+
+def _human_seconds(s: float) -> str:
+    if s < 120:
+        return f"{s:.2g} s"
+    if s < 7200:
+        return f"{s / 60:.2g} min"
+    if s < 2 * 86400:
+        return f"{s / 3600:.2g} h"
+    if s < 2 * 365 * 86400:
+        return f"{s / 86400:.2g} days"
+    return f"{s / (365 * 86400):.2g} years"

@@ -267,6 +267,8 @@ class RunPlan:
     parts: dict
     forecast: MemoryForecast
     available: int
+    products: int = 0
+    seconds_estimate: float = 0.0
 
     @property
     def fits(self) -> bool:
@@ -280,7 +282,7 @@ class RunPlan:
                              "dimension": c.dimension, "weight": c.weight, "real": c.real} for c in self.sectors],
                 "sector_note": self.sector_note, "block": self.block, "stored_matrices": self.store,
                 "parts": dict(self.parts), "forecast": self.forecast.as_dict(), "available_bytes": self.available,
-                "fits": self.fits}
+                "fits": self.fits, "products": self.products, "seconds_estimate": self.seconds_estimate}
 
 
 def _stabiliser(bits: int, L: int, reflection: bool, spin_flip: bool) -> list[tuple[int, int, int]]:
@@ -388,6 +390,37 @@ def check_time_resolution(scenario, H) -> None:
             f"allowed with this grid: t_max in [{lo:.3g}, {MAX_TIME:g}]")
 
 
+#: rough cost of one product per (state x Pauli string) on one machine: 5-8 ns measured with
+#: ``largeq.workflows.forecast.calibrate`` on the 2-core development machine (L = 14-18, three built-in
+#: examples); ``largeq forecast`` measures the machine it runs on instead
+ROUGH_SECONDS_PER_STATE_TERM = 8e-9
+#: Lanczos steps of the spectral bounds (engines.bounds default)
+BOUNDS_PRODUCTS = 60
+
+
+def _time_estimate(scenario, H, dimension: int, block: int) -> tuple[int, float]:
+    """Products of the evolution (Chebyshev orders per block at the half-width bound sum |c|, an
+    overestimate by up to ~2.5x for the built-in examples) and an uncalibrated time at
+    ``ROUGH_SECONDS_PER_STATE_TERM``."""
+    from largeq.engines.propagate import chebyshev_order
+
+    times = scenario.time.times()
+    a = float(np.sum(np.abs(H.coeff)))
+    tol = scenario.numerics.tolerance
+    products = BOUNDS_PRODUCTS
+    n = times.size
+    i = 0
+    cache: dict[float, int] = {}
+    while i < n - 1:
+        j = min(n - 1, i + block)
+        span = round(float(times[j] - times[i]), 12)
+        if span not in cache:
+            cache[span] = chebyshev_order(a * span, tol)[0] - 1
+        products += cache[span]
+        i = j
+    return int(products), float(products) * dimension * max(len(H.coeff), 1) * ROUGH_SECONDS_PER_STATE_TERM
+
+
 def plan_run(scenario, *, symmetry: str = "auto", block: int | None = None, available: int | None = None,
              model_parts: dict | None = None, check_times: bool = True) -> RunPlan:
     """The path ``relax`` takes for ``scenario`` and its memory, from counting alone (no basis tables, no
@@ -403,6 +436,10 @@ def plan_run(scenario, *, symmetry: str = "auto", block: int | None = None, avai
         from largeq.workflows.errors import OptionError
 
         raise OptionError(f"symmetry: got {symmetry!r}; allowed: 'auto', 'off'")
+    if block is not None and (isinstance(block, bool) or not isinstance(block, (int, np.integer)) or block < 1):
+        from largeq.workflows.errors import OptionError
+
+        raise OptionError(f"block: got {block!r}; allowed: an integer >= 1 (output times per Chebyshev expansion)")
     avail = available_bytes() if available is None else int(available)
     parts = model_parts or {}
     H = parts["hamiltonian"] if "hamiltonian" in parts else model.hamiltonian(scenario)
@@ -456,15 +493,17 @@ def plan_run(scenario, *, symmetry: str = "auto", block: int | None = None, avai
                             f"{len(dims)} sector(s) {dims}; stored sector matrices: {'yes' if store else 'no'}")
         reason = (f"H is translation invariant: the initial state splits into {len(comps)} symmetry sector(s) of "
                   f"dimensions {', '.join(f'{d:,}' for d in dims)} (instead of {D:,}); {note}")
+        products, seconds = _time_estimate(scenario, H, int(sum(dims)), blk)
         return RunPlan("sectors", reason, "", L, up, D, label, basis_reason, int(sum(dims)), tuple(comps), note, blk,
-                       store, mem, fc, avail)
+                       store, mem, fc, avail, products, seconds)
     blk = block or choose_block(D, L, n_times, avail, method)
     fc = evolution_forecast(D, L, method=method, block=blk)
     mem = {"vectors": int(fc.vectors * fc.vector_bytes), "tables": int(fc.table_bytes),
            "interpreter": OVERHEAD_BYTES, "total": int(fc.total_bytes)}
     path = "full" if up is None else "magnetization"
+    products, seconds = _time_estimate(scenario, H, D, blk if method == "chebyshev" else 1)
     return RunPlan(path, f"{basis_reason}; {refused}", refused, L, up, D, label, basis_reason, D, (), "", blk, False,
-                   mem, fc, avail)
+                   mem, fc, avail, products, seconds)
 
 
 __all__ += ["RunPlan", "SectorCount", "plan_run", "check_time_resolution", "count_state_sectors", "choose_block", "sector_memory"]

@@ -137,10 +137,16 @@ def task_forecast(scenario: Scenario, options: SweepOptions, memory: int | None 
     not attempted when even that exceeds ``max_dim``) and the symmetry permutation tables (4 L x dim int64
     at most, only below the size where the exact engine builds them).
     """
-    from largeq.operators.problem import build_problem
+    from types import SimpleNamespace
 
-    problem = build_problem(scenario)
-    dim, L = int(problem.basis.dim), problem.n_sites
+    from largeq.model import build as model
+    from largeq.workflows.planning import plan_run
+
+    # by counting: nothing is built, so a task far too large is refused at once, in little memory
+    plan = plan_run(scenario, symmetry="off", available=1 << 62, check_times=False)
+    dim, L = plan.basis_dimension, plan.n_sites
+    problem = SimpleNamespace(symmetries=model.symmetries(scenario), n_sites=L,
+                              basis=SimpleNamespace(up_spins=plan.up_spins))
     memory = available_bytes() if memory is None else int(memory)
     block = _block(dim, L, scenario.time.n_points, memory)
     parts = {"evolution": evolution_forecast(dim, L, block=block).total_bytes,
