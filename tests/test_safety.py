@@ -294,3 +294,40 @@ def test_bytes_in_scaled_units():
     assert format_bytes(5 * 2**40) == "5.00 TiB"
     assert format_bytes(2.5 * 2**30) == "2.50 GiB"
     assert format_bytes(512 * 2**20) == "512.00 MiB"
+
+
+@pytest.mark.parametrize("args", [
+    ["spectra", "neel_j1j2", "--sites", "62"],
+    ["thermal", "neel_j1j2", "--sites", "62"],
+    ["crosscheck", "xx_neel", "--sizes", "8", "40"],
+])
+def test_every_command_refuses_by_counting_before_building(tmp_path, args):
+    r = largeq(*args, "--out", tmp_path / "o", timeout=120)
+    assert_one_line_error(r, "refusing to start")
+    assert not (tmp_path / "o").exists()
+    assert resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss < 2 * 2**20
+
+
+def test_sweep_refuses_a_size_that_cannot_fit(tmp_path):
+    r = largeq("sweep", "neel_j1j2", "--sizes", 10, 12, 60, "--serial", "--out", tmp_path / "s", timeout=120)
+    assert r.returncode == 2 and "Traceback" not in r.stderr and "L060" in r.stderr
+    assert resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss < 2 * 2**20
+
+
+@pytest.mark.parametrize("block", ["0", "-3"])
+def test_forecast_block_checked(block):
+    r = largeq("forecast", "xx_neel", "--sites", 12, "--block", block, "--no-calibration", "--out", "/proc/never")
+    assert_one_line_error(r, f"block: got {block}")
+
+
+def test_describe_time_forecast_counts_products():
+    # the planned products bound the ones relax spends: the half-width bound sum |c| >= the true half-width
+    from largeq.workflows.relax import RelaxOptions, run_relaxation
+    import tempfile
+
+    sc = resolve_scenario("neel_j1j2", 10)
+    plan = plan_run(sc)
+    with tempfile.TemporaryDirectory() as d:
+        run = run_relaxation(sc, Path(d) / "r", RelaxOptions(progress=False, equilibration="off"))
+    assert plan.products >= run.summary["matvecs"]
+    assert plan.products <= 4 * run.summary["matvecs"]
