@@ -331,3 +331,28 @@ def test_describe_time_forecast_counts_products():
         run = run_relaxation(sc, Path(d) / "r", RelaxOptions(progress=False, equilibration="off"))
     assert plan.products >= run.summary["matvecs"]
     assert plan.products <= 4 * run.summary["matvecs"]
+
+
+@pytest.mark.parametrize("args, needle", [
+    (["thermal", "xx_neel", "--sites", "8", "--seed", "-1"], "--seed: got -1"),
+    (["spectra", "xx_neel", "--sites", "8", "--seed", "-1"], "--seed: got -1"),
+    (["crosscheck", "xx_neel", "--sites", "8", "--seed", "-1"], "--seed: got -1"),
+    (["crosscheck", "xx_neel", "--sites", "8", "--max-dim", "-1"], "--max-dim: got -1"),
+    (["sweep", "xx_neel", "--sizes", "6", "8", "10", "--serial", "--seed", "-1"], "--seed: got -1"),
+    (["sweep", "xx_neel", "--sizes", "6", "8", "10", "--serial", "--moments", "0"], "--moments: got 0"),
+    (["sweep", "xx_neel", "--sizes", "6", "8", "10", "--serial", "--max-dim", "0"], "--max-dim: got 0"),
+])
+def test_bad_options_of_other_commands_are_one_line(tmp_path, args, needle):
+    r = largeq(*args, "--out", tmp_path / "o")
+    assert_one_line_error(r, needle, "allowed")
+    assert not (tmp_path / "o").exists()
+
+
+def test_out_onto_finished_forecast_refuses_without_overwrite(tmp_path):
+    out = tmp_path / "f"
+    assert largeq("forecast", "xx_neel", "--sites", 8, "--no-calibration", "--out", out).returncode == 0
+    r = largeq("forecast", "xx_neel", "--sites", 10, "--no-calibration", "--out", out)
+    assert_one_line_error(r, "finished run", "--overwrite")
+    assert json.loads((out / "forecast.json").read_text())["sites"] == 8
+    r = largeq("forecast", "xx_neel", "--sites", 10, "--no-calibration", "--out", out, "--overwrite")
+    assert r.returncode == 0 and json.loads((out / "forecast.json").read_text())["sites"] == 10
