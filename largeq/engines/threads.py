@@ -6,8 +6,10 @@ or one while the other's idle workers still spin, they oversubscribe the cores. 
 
 * while compiled kernels run (time evolution, KPM, Lanczos bounds): BLAS is held to one thread;
 * while dense linear algebra runs (exact diagonalization, thermal values): numba's parallel loops are held
-  to one thread, and BLAS to one thread as well for small matrices (below ``SMALL_DENSE_DIM``, where
-  splitting the work costs more than it gains: common practice).
+  to one thread, and BLAS to one thread as well unless the caller names a matrix of at least
+  ``SMALL_DENSE_DIM`` states (many small symmetry blocks: splitting each one costs more than it gains; on the
+  2-core development machine with other jobs running, the exact part of ``relax xx_neel`` took 105 s with
+  BLAS on all cores and 12 s on one, see docs/safety.md).
 
 Both are context managers that restore the previous settings on exit.  An explicit environment setting
 (OPENBLAS_NUM_THREADS, OMP_NUM_THREADS, NUMBA_NUM_THREADS) still bounds the pools from above.
@@ -34,14 +36,15 @@ def compiled_kernels():
 
 @contextmanager
 def dense_linear_algebra(dimension: int | None = None):
-    """BLAS/LAPACK on all cores (one for matrices smaller than ``SMALL_DENSE_DIM``); numba held to one thread."""
+    """numba held to one thread; BLAS/LAPACK on all cores only for a matrix of ``dimension`` >= ``SMALL_DENSE_DIM``,
+    on one thread otherwise (also when the dimension is not known: many small symmetry blocks)."""
     import numba
     from threadpoolctl import threadpool_limits
 
     old = numba.get_num_threads()
     numba.set_num_threads(1)
     try:
-        if dimension is not None and dimension < SMALL_DENSE_DIM:
+        if dimension is None or dimension < SMALL_DENSE_DIM:
             with threadpool_limits(limits=1, user_api="blas"):
                 yield
         else:
