@@ -208,10 +208,13 @@ def test_thread_policy_limits_blas_while_kernels_run():
     with compiled_kernels():
         assert all(i["num_threads"] == 1 for i in threadpool_info() if i["user_api"] == "blas")
     before = numba.get_num_threads()
-    with dense_linear_algebra(10):
-        assert numba.get_num_threads() == 1
-        assert all(i["num_threads"] == 1 for i in threadpool_info() if i["user_api"] == "blas")
+    for dim in (10, None):  # small or unnamed matrices (many symmetry blocks): BLAS on one thread too
+        with dense_linear_algebra(dim):
+            assert numba.get_num_threads() == 1
+            assert all(i["num_threads"] == 1 for i in threadpool_info() if i["user_api"] == "blas")
     assert numba.get_num_threads() == before
+    with dense_linear_algebra(20_000):
+        assert numba.get_num_threads() == 1
 
 
 # ------------------------------------------------------------------------------------- planning by counting

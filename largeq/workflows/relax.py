@@ -68,6 +68,11 @@ class RelaxOptions:
         "auto": evolve in momentum (and reflection / spin-flip) sectors when H is translation
         invariant, the start is a z-basis state and every observable is diagonal; "off": always
         the magnetization sector (or full space).
+    started : float or None
+        When the command started (seconds since the epoch, e.g. the process start); ``wall_seconds`` counts from
+        there.  None: from the call of :func:`run_relaxation` / :func:`resume_relaxation`.
+
+    Values outside the allowed ones raise OptionError (:func:`check_relax_options`).
     """
 
     checkpoint_seconds: float | None = None
