@@ -44,14 +44,22 @@ def main(argv=None) -> int:
     args = parser.parse_args(argv)
     try:
         return args.func(args)
-    except (ScenarioError, WorkflowError, UsageError, MemoryRefusal, CheckpointError, FileExistsError,
-            FileNotFoundError) as exc:
+    except (ScenarioError, WorkflowError, UsageError, MemoryRefusal, CheckpointError) as exc:
         print(f"largeq {args.command}: error: {exc}", file=sys.stderr)
         return 2
-    except OSError as exc:  # unwritable or read-only folders, full disks: the system's reason and the path
-        where = f" ({exc.filename})" if getattr(exc, "filename", None) else ""
-        print(f"largeq {args.command}: error: cannot write the run folder{where}: {exc.strerror or exc}",
-              file=sys.stderr)
+    except OSError as exc:
+        if getattr(exc, "filename", None):  # unwritable or read-only folders, full disks: the path and the reason
+            import os
+
+            path = str(exc.filename)
+            where = "" if os.path.isabs(path) else f" (in the working folder {os.getcwd()})"
+            out = getattr(args, "out", None)
+            folder = (out is not None and str(out).startswith(path)) or (out is None and path.startswith("runs"))
+            hint = "; give a writable folder with --out" if folder and hasattr(args, "out") else ""
+            print(f"largeq {args.command}: error: cannot use {path}{where}: {exc.strerror or exc}{hint}",
+                  file=sys.stderr)
+        else:  # a message of our own (e.g. a folder that is not a run folder)
+            print(f"largeq {args.command}: error: {exc}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         print(f"largeq {args.command}: interrupted; a run with checkpoints can be continued with --resume",
