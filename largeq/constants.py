@@ -5,7 +5,8 @@ Seeds are fixed so that reruns give the same numbers; every run records the seed
 
 from __future__ import annotations
 
-__all__ = ["MAX_DENSE_DIM", "EXACT_AUTO_MAX_BLOCK", "EXACT_THERMAL_MAX_DIM", "ESTIMATE_MAX_DIM", "BOUNDS_SEED", "ESTIMATOR_SEED", "CROSSCHECK_SEED", "SWEEP_SEED"]
+__all__ = ["MAX_DENSE_DIM", "EXACT_AUTO_MAX_BLOCK", "EXACT_THERMAL_MAX_DIM", "ESTIMATE_MAX_DIM",
+           "MIN_PHASE_STEP", "BOUNDS_SEED", "ESTIMATOR_SEED", "CROSSCHECK_SEED", "SWEEP_SEED"]
 
 #: largest matrix diagonalized densely (about 4 GB for eigenvectors in float64 and minutes on 2 cores)
 MAX_DENSE_DIM = 13_000
@@ -18,6 +19,10 @@ EXACT_THERMAL_MAX_DIM = 60_000
 #: largest basis for which the main command runs the KPM / typical-state estimates by default
 #: (about a minute on 2 cores at L = 20 in a magnetization sector)
 ESTIMATE_MAX_DIM = 300_000
+
+#: smallest phase ||H|| dt an output step may turn: below it the state changes by less than the rounding of
+#: a double (about 1e-16 per product, accumulated over the expansion), so the curve is noise (common practice)
+MIN_PHASE_STEP = 1e-8
 
 #: seed of the Lanczos start vector of the spectral bounds (identical bounds in every command)
 BOUNDS_SEED = 20260101

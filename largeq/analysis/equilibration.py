@@ -1241,7 +1241,7 @@ def _canonical_weights(e: np.ndarray, beta: float) -> np.ndarray:
 
 def exact_thermal_values(problem, energy: float, *, width: float | None = None, max_dim: int = MAX_DENSE_DIM,
                          group: SymmetryGroup | None = None, psi=None,
-                         resolve_total_spin: bool | None = None) -> ExactThermal:
+                         resolve_total_spin: bool | None = None, progress=None) -> ExactThermal:
     """Canonical and microcanonical values from full diagonalization, block by block.
 
     Tr(A f(H)) = sum_b Tr(Q_b^dagger A Q_b f(H_b)) holds for every A because the ensemble is
@@ -1265,6 +1265,9 @@ def exact_thermal_values(problem, energy: float, *, width: float | None = None, 
     psi : ndarray, optional
         Initial state in the basis (needed to resolve the total spin).
     resolve_total_spin : bool, optional
+        Resolve the ensemble in the total spin (default: when H conserves it and psi is given).
+    progress : callable, optional
+        Called as ``progress(i, n_blocks)`` after each block is diagonalized.
     """
     from largeq.analysis.levels import _s2_block, spin_resolve, spin_squared_csr
 
@@ -1297,6 +1300,8 @@ def exact_thermal_values(problem, energy: float, *, width: float | None = None, 
         for n, a in a_csr.items():
             ab = (blk.q.conj().T @ (a @ blk.q)).toarray()
             diags[n].append(np.real(np.einsum("im,im->m", v.conj(), ab @ v)))
+        if progress is not None:
+            progress(len(es), len(blocks))
     e = np.concatenate(es)
     order = np.argsort(e)
     e = e[order]

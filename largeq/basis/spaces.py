@@ -21,7 +21,8 @@ from math import comb
 
 import numpy as np
 
-__all__ = ["Basis", "full_basis", "magnetization_basis", "choose_basis", "BasisChoice"]
+__all__ = ["Basis", "full_basis", "magnetization_basis", "choose_basis", "BasisChoice", "basis_decision",
+           "basis_label", "basis_dimension", "basis_table_bytes"]
 
 MAX_SITES = 62
 
@@ -70,12 +71,7 @@ class Basis:
 
     @property
     def label(self) -> str:
-        if self.up_spins is None:
-            return f"full space, L = {self.n_sites}, dimension 2^{self.n_sites} = {self.dim:,}"
-        return (
-            f"magnetization sector n_up = {self.up_spins} of L = {self.n_sites} "
-            f"(sum of sigma^z = {2 * self.up_spins - self.n_sites}), dimension C({self.n_sites},{self.up_spins}) = {self.dim:,}"
-        )
+        return basis_label(self.n_sites, self.up_spins)
 
     def bytes_per_vector(self, dtype=np.complex128) -> int:
         return int(self.dim) * np.dtype(dtype).itemsize
@@ -198,31 +194,63 @@ class BasisChoice:
     reason: str
 
 
-def choose_basis(n_sites: int, *, conserves_magnetization: bool, state_up_spins: int | None,
-                 requested_up_spins: int | None = None) -> BasisChoice:
-    """Smallest basis holding both the Hamiltonian's dynamics and the initial state.
+def basis_label(n_sites: int, up_spins: int | None) -> str:
+    """The basis in words (no tables needed)."""
+    dim = basis_dimension(n_sites, up_spins)
+    if up_spins is None:
+        return f"full space, L = {n_sites}, dimension 2^{n_sites} = {dim:,}"
+    return (
+        f"magnetization sector n_up = {up_spins} of L = {n_sites} "
+        f"(sum of sigma^z = {2 * up_spins - n_sites}), dimension C({n_sites},{up_spins}) = {dim:,}"
+    )
 
-    A z-basis product state has a definite number of up spins; when the Hamiltonian commutes
-    with the total magnetization the evolution never leaves that sector.
-    """
+
+def basis_dimension(n_sites: int, up_spins: int | None) -> int:
+    """Dimension of the full space (``up_spins`` None) or of a magnetization sector, by counting."""
+    return (1 << n_sites) if up_spins is None else comb(n_sites, up_spins)
+
+
+def basis_table_bytes(n_sites: int, up_spins: int | None = None, n_lo: int | None = None) -> int:
+    """Bytes of the lookup tables :func:`full_basis` / :func:`magnetization_basis` would allocate
+    (four int64 tables of 2^n_hi or 2^n_lo entries), known before allocating them."""
+    n_lo = _split(n_sites, n_lo)
+    return 16 * ((1 << (n_sites - n_lo)) + (1 << n_lo))
+
+
+def basis_decision(n_sites: int, *, conserves_magnetization: bool, state_up_spins: int | None,
+                   requested_up_spins: int | None = None) -> tuple[int | None, str]:
+    """Which basis :func:`choose_basis` takes, without building it: (up_spins or None, reason)."""
     if requested_up_spins is not None:
         if not conserves_magnetization:
             raise ValueError("sector.up_spins: a magnetization sector was requested but the Hamiltonian "
                              "does not conserve the magnetization (x field or XYZ anisotropy)")
         if state_up_spins is not None and state_up_spins != requested_up_spins:
             raise ValueError(f"sector.up_spins: got {requested_up_spins}; the initial state has {state_up_spins} up spins")
-        b = magnetization_basis(n_sites, requested_up_spins)
-        return BasisChoice(b, f"magnetization sector n_up = {requested_up_spins} requested in the scenario")
+        if isinstance(requested_up_spins, bool) or not 0 <= requested_up_spins <= n_sites:
+            raise ValueError(f"up_spins: got {requested_up_spins!r}; allowed: an integer between 0 and {n_sites}")
+        return requested_up_spins, f"magnetization sector n_up = {requested_up_spins} requested in the scenario"
     if conserves_magnetization and state_up_spins is not None:
-        b = magnetization_basis(n_sites, state_up_spins)
-        return BasisChoice(
-            b,
+        dim = comb(n_sites, state_up_spins)
+        return state_up_spins, (
             f"H conserves the total magnetization and the initial state has n_up = {state_up_spins}: "
-            f"the run stays in that sector ({b.dim:,} states instead of {1 << n_sites:,})",
-        )
+            f"the run stays in that sector ({dim:,} states instead of {1 << n_sites:,})")
     if not conserves_magnetization:
         why = "H does not conserve the magnetization (a transverse field or XYZ couplings), so the full space is needed"
     else:
         why = ("the initial state is not a definite-magnetization state (it spreads over several sectors); "
                "the full space holds it")
-    return BasisChoice(full_basis(n_sites), why)
+    return None, why
+
+
+def choose_basis(n_sites: int, *, conserves_magnetization: bool, state_up_spins: int | None,
+                 requested_up_spins: int | None = None) -> BasisChoice:
+    """Smallest basis holding both the Hamiltonian's dynamics and the initial state.
+
+    A z-basis product state has a definite number of up spins; when the Hamiltonian commutes
+    with the total magnetization the evolution never leaves that sector.  The decision itself is
+    :func:`basis_decision` (no tables), so planners can make it before allocating anything.
+    """
+    up, why = basis_decision(n_sites, conserves_magnetization=conserves_magnetization,
+                             state_up_spins=state_up_spins, requested_up_spins=requested_up_spins)
+    b = full_basis(n_sites) if up is None else magnetization_basis(n_sites, up)
+    return BasisChoice(b, why)

@@ -2,9 +2,12 @@
 
 from __future__ import annotations
 
+from pathlib import Path
+
 from largeq.scenario import resolve_scenario
 
-__all__ = ["UsageError", "add_scenario_arguments", "add_progress_arguments", "resolve_scenario"]
+__all__ = ["UsageError", "add_scenario_arguments", "add_progress_arguments", "resolve_scenario",
+           "add_overwrite_argument", "refuse_finished_folder", "check_seed"]
 
 
 class UsageError(Exception):
@@ -24,3 +27,21 @@ def add_progress_arguments(p) -> None:
     g = p.add_mutually_exclusive_group()
     g.add_argument("--progress", dest="progress", action="store_true", default=None, help="always show a progress bar")
     g.add_argument("--no-progress", dest="progress", action="store_false", help="never show a progress bar")
+
+
+def add_overwrite_argument(p) -> None:
+    """``--overwrite``: allow ``--out`` onto a folder that holds a finished run."""
+    p.add_argument("--overwrite", action="store_true", help="replace a finished run already in the --out folder")
+
+
+def refuse_finished_folder(folder, overwrite: bool, marker: str = "summary.json") -> None:
+    """UsageError when ``folder`` already holds finished results (``marker``) and ``overwrite`` is not set."""
+    if folder is not None and not overwrite and (Path(folder) / marker).exists():
+        raise UsageError(f"{folder} already holds a finished run ({marker}); choose another --out, or pass "
+                         f"--overwrite to replace it")
+
+
+def check_seed(seed) -> None:
+    """UsageError for a seed numpy cannot take (negative)."""
+    if seed is not None and seed < 0:
+        raise UsageError(f"--seed: got {seed}; allowed: an integer >= 0")

@@ -2,12 +2,17 @@
 
 from __future__ import annotations
 
-from largeq.cli.common import UsageError, add_progress_arguments, add_scenario_arguments, resolve_scenario
+from largeq.cli.common import (UsageError, add_overwrite_argument, add_progress_arguments, add_scenario_arguments,
+                               check_seed, refuse_finished_folder, resolve_scenario)
 from largeq.workflows.crosscheck import CrosscheckOptions, run_crosscheck
 from largeq.constants import CROSSCHECK_SEED, MAX_DENSE_DIM
 
 
 def run(args) -> int:
+    check_seed(args.seed)
+    if args.max_dim < 1:
+        raise UsageError(f"--max-dim: got {args.max_dim}; allowed: an integer >= 1")
+    refuse_finished_folder(args.out, args.overwrite)
     scenario = resolve_scenario(args.scenario, args.sites)
     sizes = args.sizes or [scenario.n_sites]
     try:
@@ -28,6 +33,7 @@ def add_parser(subparsers) -> None:
     p.add_argument("--sizes", type=int, nargs="+", default=None, metavar="L",
                    help="chain lengths to check (default: the scenario's)")
     p.add_argument("--out", default=None, metavar="FOLDER", help="run folder (default: runs/crosscheck-<timestamp>)")
+    add_overwrite_argument(p)
     p.add_argument("--moments", type=int, default=256, metavar="N", help="KPM moments (default 256)")
     p.add_argument("--vectors", type=int, default=20, metavar="R",
                    help="random vectors for the DOS trace and thermal averages (default 20)")

@@ -7,22 +7,25 @@ from largeq.workflows.disorder import run_disorder_relaxation
 from largeq.workflows.relax import RelaxOptions, resume_relaxation, run_relaxation
 from largeq.constants import ESTIMATOR_SEED
 from largeq.reports.headline import fmt, fmt_error, headline_text, relax_headline
+from largeq.reports.phases import process_start_time
 
 
 def add_parser(sub) -> None:
     p = sub.add_parser("relax", help="main job: relaxation curves, equilibrium values, fluctuations, saved as a run folder")
     add_scenario_arguments(p, scenario_optional=True)
     p.add_argument("--out", default=None, metavar="FOLDER", help="run folder (default: runs/relax-<timestamp>)")
+    p.add_argument("--overwrite", action="store_true", help="replace a finished run already in --out FOLDER")
     p.add_argument("--resume", default=None, metavar="FOLDER", help="continue an interrupted run from its checkpoint")
     p.add_argument("--checkpoint-every", type=float, default=None, metavar="SECONDS",
                    help="checkpoint interval (default: the scenario's numerics.checkpoint_seconds)")
     p.add_argument("--block", type=int, default=None, metavar="K",
                    help="output times sharing one Chebyshev expansion (default: chosen from free memory)")
-    p.add_argument("--equilibration", choices=("auto", "exact", "estimate", "off"), default="auto",
+    p.add_argument("--equilibration", choices=("auto", "exact", "estimate", "off"), default=None,
                    help="effective dimension, fluctuation bound and thermal values: exact diagonalization where it "
                         "fits, KPM/typical-state estimates up to dimension 300,000, skipped beyond (auto)")
-    p.add_argument("--seed", type=int, default=ESTIMATOR_SEED, help="seed of the estimators' random vectors (recorded)")
-    p.add_argument("--symmetry", choices=("auto", "off"), default="auto",
+    p.add_argument("--seed", type=int, default=None,
+                   help=f"seed of the estimators' random vectors (default {ESTIMATOR_SEED}; recorded, restored by --resume)")
+    p.add_argument("--symmetry", choices=("auto", "off"), default=None,
                    help="evolve in momentum/reflection/spin-flip sectors when the model, the start and the "
                         "observables allow it (auto), or always in the magnetization sector (off)")
     p.add_argument("--realizations", type=int, default=1, metavar="N",
@@ -32,12 +35,18 @@ def add_parser(sub) -> None:
 
 
 def run(args) -> int:
-    options = RelaxOptions(checkpoint_seconds=args.checkpoint_every, progress=args.progress, block=args.block,
-                           equilibration=args.equilibration, seed=args.seed, symmetry=args.symmetry)
+    # options that change the numbers: only those given on the command line count on a resume
+    given = {k: getattr(args, k) for k in ("equilibration", "seed", "symmetry", "block") if getattr(args, k) is not None}
+    options = RelaxOptions(checkpoint_seconds=args.checkpoint_every, progress=args.progress,
+                           started=process_start_time(), **given)
     if args.resume:
         if args.scenario:
             raise UsageError("relax --resume takes a run folder and no scenario")
-        result = resume_relaxation(args.resume, options)
+        if args.out is not None or args.overwrite:
+            raise UsageError("relax --resume continues in its own folder: drop --out / --overwrite")
+        result = resume_relaxation(args.resume, options, given=set(given))
+        if result.already_finished:
+            print(f"{args.resume}: this run is already finished (summary.json); nothing recomputed")
     else:
         if not args.scenario:
             raise UsageError("relax needs a scenario (a TOML file or a built-in example name) or --resume FOLDER")
@@ -48,7 +57,8 @@ def run(args) -> int:
                                           options, echo=print)
             _print_disorder_summary(result)
             return 0
-        result = run_relaxation(resolve_scenario(args.scenario, args.sites), args.out, options)
+        result = run_relaxation(resolve_scenario(args.scenario, args.sites), args.out, options,
+                                overwrite=args.overwrite)
     _print_relax_summary(result)
     return 0
 

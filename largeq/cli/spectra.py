@@ -2,7 +2,8 @@
 
 from __future__ import annotations
 
-from largeq.cli.common import UsageError, add_progress_arguments, add_scenario_arguments, resolve_scenario
+from largeq.cli.common import (UsageError, add_overwrite_argument, add_progress_arguments, add_scenario_arguments,
+                               check_seed, refuse_finished_folder, resolve_scenario)
 from largeq.workflows.spectra import KERNELS, SpectraOptions, resume_spectra, run_spectra
 
 
@@ -19,11 +20,15 @@ def add_parser(subparsers) -> None:
     p.add_argument("--seed", type=int, default=None, metavar="S", help="seed of the random vectors (default: drawn, "
                                                                        "and written to the outputs)")
     p.add_argument("--resume", default=None, metavar="DIR", help="continue an interrupted spectra run")
+    add_overwrite_argument(p)
     add_progress_arguments(p)
     p.set_defaults(func=run)
 
 
 def run(args) -> int:
+    check_seed(args.seed)
+    if not args.resume:
+        refuse_finished_folder(args.out, args.overwrite)
     options = SpectraOptions(moments=args.moments, vectors=args.vectors, kernel=args.kernel, seed=args.seed,
                              progress=args.progress)
     if args.resume:

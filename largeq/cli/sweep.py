@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from largeq.cli.common import UsageError, resolve_scenario
+from largeq.cli.common import UsageError, check_seed, resolve_scenario
 from largeq.workflows.sweep import SweepOptions, format_table, run_sweep
 from largeq.constants import MAX_DENSE_DIM, SWEEP_SEED
 
@@ -30,6 +30,13 @@ def add_parser(subparsers) -> None:
 
 
 def run(args) -> int:
+    check_seed(args.seed)
+    if args.moments < 16:
+        raise UsageError(f"--moments: got {args.moments}; allowed: an integer >= 16")
+    if args.vectors < 1:
+        raise UsageError(f"--vectors: got {args.vectors}; allowed: an integer >= 1")
+    if args.max_dim < 1:
+        raise UsageError(f"--max-dim: got {args.max_dim}; allowed: an integer >= 1")
     if args.realizations < 1:
         raise UsageError("--realizations must be >= 1")
     if args.workers is not None and args.workers < 1:

@@ -2,7 +2,8 @@
 
 from __future__ import annotations
 
-from largeq.cli.common import add_progress_arguments, add_scenario_arguments, resolve_scenario
+from largeq.cli.common import (add_overwrite_argument, add_progress_arguments, add_scenario_arguments, check_seed,
+                               refuse_finished_folder, resolve_scenario)
 from largeq.workflows.thermal import ThermalOptions, run_thermal
 
 
@@ -11,6 +12,7 @@ def add_parser(subparsers) -> None:
                                               "(thermal pure quantum states); saved as a run folder")
     add_scenario_arguments(p)
     p.add_argument("--out", default=None, metavar="DIR", help="run folder (default: runs/thermal-<timestamp>)")
+    add_overwrite_argument(p)
     p.add_argument("--vectors", type=int, default=ThermalOptions.vectors, metavar="R",
                    help=f"random vectors (default {ThermalOptions.vectors})")
     p.add_argument("--betas", type=float, nargs="+", default=None, metavar="BETA",
@@ -25,6 +27,8 @@ def add_parser(subparsers) -> None:
 
 
 def run(args) -> int:
+    check_seed(args.seed)
+    refuse_finished_folder(args.out, args.overwrite)
     options = ThermalOptions(vectors=args.vectors, betas=tuple(args.betas) if args.betas else None,
                              window=args.window, seed=args.seed, progress=args.progress)
     result = run_thermal(resolve_scenario(args.scenario, args.sites), args.out, options)

@@ -7,16 +7,19 @@ scenario.  Data flows one way: scenario -> model (Pauli sums) -> basis -> operat
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from typing import TYPE_CHECKING
 from functools import cached_property
 
 import numpy as np
 
 from largeq.model import build as model
 from largeq.basis.spaces import Basis, choose_basis
-from largeq.operators.pauli_operator import PauliOperator
 from largeq.model.pauli import PauliSum
 from largeq.scenario.spec import Scenario
 from largeq.basis.states import product_state
+
+if TYPE_CHECKING:
+    from largeq.operators.pauli_operator import PauliOperator
 
 __all__ = ["Problem", "build_problem", "spin_conventions"]
 
@@ -61,10 +64,14 @@ class Problem:
     @cached_property
     def operator(self) -> PauliOperator:
         """The Hamiltonian on the chosen basis (matrix-free)."""
+        from largeq.operators.pauli_operator import PauliOperator  # compiled kernels: imported when first needed
+
         return PauliOperator(self.hamiltonian, self.basis)
 
     def observable_operator(self, name: str) -> PauliOperator:
         if name not in self._ops:
+            from largeq.operators.pauli_operator import PauliOperator
+
             self._ops[name] = PauliOperator(self.observables[name].pauli, self.basis)
         return self._ops[name]
 

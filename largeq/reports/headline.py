@@ -214,10 +214,10 @@ def relax_headline(summary: dict) -> list[HeadlineLine]:
         lines.append(HeadlineLine("d_eff", [eq.get("note") or eq.get("exact_note") or "not computed"]))
     cost = [_cell(summary, "matvecs", lambda v: f"{int(v):,}" if _finite(v) else "n/a"),
             " matrix-vector products; evolution ", _cell(summary, "wall_seconds", lambda v: fmt(v, digits=3)), " s"]
-    eq_seconds = (summary.get("phase_seconds") or {}).get("equilibrium analysis")
+    eq_seconds = (summary.get("phase_seconds") or {}).get("equilibration")
     if _finite(eq_seconds):
         cost += [", equilibrium analysis ",
-                 _cell(summary, "phase_seconds[equilibrium analysis]", lambda v: fmt(v, digits=3)), " s"]
+                 _cell(summary, "phase_seconds[equilibration]", lambda v: fmt(v, digits=3)), " s"]
     if _finite(summary.get("memory_forecast_bytes")):
         cost += [", memory forecast ", _cell(summary, "memory_forecast_bytes", _bytes)]
     lines.append(HeadlineLine("cost", cost))

@@ -378,8 +378,12 @@ def run_crosscheck(scenario, sizes, folder=None, options: CrosscheckOptions | No
     sizes = [int(s) for s in sizes]
     if not sizes:
         raise ValueError("give at least one size")
+    from largeq.workflows.planning import available_bytes, check_basis_fits, evolution_forecast
+
+    avail = available_bytes()
     for s in sizes:
-        scenario.with_length(s)  # validate every size before any work (raises ScenarioError)
+        # validate every size (raises ScenarioError) and refuse, by counting, one that cannot fit: before any work
+        check_basis_fits(scenario.with_length(s), lambda d, L: evolution_forecast(d, L, block=1), avail)
     out = make_run_folder(folder, "crosscheck")
     atomic_write_text(out / "scenario.toml", scenario_to_toml(scenario))
     rows = []

@@ -15,6 +15,7 @@ std(x, ddof=1) / sqrt(N) and the spread std(x, ddof=1) (sample-to-sample fluctua
 
 from __future__ import annotations
 
+import dataclasses
 import time
 from dataclasses import dataclass
 from pathlib import Path
@@ -129,6 +130,8 @@ def run_disorder_relaxation(scenario: Scenario, n_realizations: int, folder=None
     from largeq.workflows.relax import RelaxOptions, run_relaxation
 
     options = RelaxOptions() if options is None else options
+    started = options.started
+    options = dataclasses.replace(options, started=None)  # each realization times itself; the total from `started`
     seed0 = base_seed(scenario)
     seeds = realization_seeds(seed0, n_realizations)
     out = make_run_folder(folder, "relax-disorder")
@@ -145,12 +148,12 @@ def run_disorder_relaxation(scenario: Scenario, n_realizations: int, folder=None
                 if echo:
                     echo(f"  realization {k} (seed {seed}): already done, kept")
                 continue
-        run = run_relaxation(sc, sub, options)
+        run = run_relaxation(sc, sub, options, overwrite=True)  # a stale realization of this run: redone
         summaries.append(run.summary)
         if echo:
             echo(f"  realization {k} (seed {seed}): {run.summary['wall_seconds']:.1f} s")
-    summary = _aggregate_relax(scenario, out, seeds, summaries, time.perf_counter() - t0,
-                               window_start=options.window_start)
+    wall = time.time() - started if started is not None else time.perf_counter() - t0
+    summary = _aggregate_relax(scenario, out, seeds, summaries, wall, window_start=options.window_start)
     return DisorderRun(out, summary)
 
 

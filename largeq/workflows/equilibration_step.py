@@ -14,6 +14,8 @@ from largeq.analysis.equilibrium_formulas import fluctuation_bound
 from largeq.analysis.equilibration import (DenseLimitError, estimate_deff, exact_equilibration, exact_plan,
                                            exact_thermal_values, thermal_values)
 from largeq.constants import ESTIMATE_MAX_DIM, EXACT_AUTO_MAX_BLOCK, EXACT_THERMAL_MAX_DIM
+from largeq.engines.threads import dense_linear_algebra
+from largeq.reports.progress import progress_bar
 
 __all__ = ["MODES", "ESTIMATE_MAX_DIM", "equilibration_report"]
 
@@ -25,10 +27,12 @@ def _finite(x):
 
 
 def equilibration_report(problem, times, survival, analyses, *, mode: str = "auto", seed: int = 0,
-                         energy: float) -> dict:
+                         energy: float, progress: bool | None = None) -> dict:
     """d_eff (exact or estimated, and how), bounds, sigma^2 / bound and thermal values per observable.
 
     Returns {"summary": dict for summary.json, "per_observable": {name: dict}, "rows": report rows}.
+    Dense diagonalizations run under the dense thread policy (:mod:`largeq.engines.threads`); ``progress``
+    shows a bar over the thermal values' symmetry blocks.
     """
     if mode not in MODES:
         raise ValueError(f"equilibration mode: got {mode!r}; allowed: {', '.join(MODES)}")
@@ -48,7 +52,8 @@ def equilibration_report(problem, times, survival, analyses, *, mode: str = "aut
         plan = exact_plan(problem)
         if mode == "exact" or plan.largest <= EXACT_AUTO_MAX_BLOCK:
             try:
-                exact = exact_equilibration(problem, plan=plan)
+                with dense_linear_algebra():
+                    exact = exact_equilibration(problem, plan=plan)
             except DenseLimitError as exc:
                 if mode == "exact":
                     raise
@@ -58,7 +63,7 @@ def equilibration_report(problem, times, survival, analyses, *, mode: str = "aut
                                             f"{plan.largest:,} > {EXACT_AUTO_MAX_BLOCK:,} (automatic limit); "
                                             "--equilibration exact runs it anyway")
     if exact is not None:
-        _from_exact(problem, exact, analyses, energy, out, rng)
+        _from_exact(problem, exact, analyses, energy, out, rng, progress)
         return out
     if mode == "estimate" or dim <= ESTIMATE_MAX_DIM:
         _from_estimate(problem, times, survival, analyses, energy, rng, out)
@@ -69,7 +74,7 @@ def equilibration_report(problem, times, survival, analyses, *, mode: str = "aut
     return out
 
 
-def _from_exact(problem, ex, analyses, energy, out, rng) -> None:
+def _from_exact(problem, ex, analyses, energy, out, rng, progress=None) -> None:
     s = out["summary"]
     s.update(method="exact diagonalization", d_eff=ex.d_eff, d_eff_range=[ex.d_eff, ex.d_eff],
              how=(f"dense diagonalization of {ex.subspace}"
@@ -79,8 +84,16 @@ def _from_exact(problem, ex, analyses, energy, out, rng) -> None:
     s["details"].pop("observables", None)
     th = None
     if problem.basis.dim <= EXACT_THERMAL_MAX_DIM:
+        bar = progress_bar(None, f"thermal values L={problem.n_sites}", enabled=progress)
+
+        def on_block(i, n):
+            if bar._bar is not None and bar._bar.total != n:
+                bar._bar.total = n
+            bar.update(1)
+
         try:
-            th = exact_thermal_values(problem, energy, psi=problem.initial_vector()[0])
+            with dense_linear_algebra():
+                th = exact_thermal_values(problem, energy, psi=problem.initial_vector()[0], progress=on_block)
             s["thermal"] = {"method": "exact (all symmetry blocks of the basis)", "beta": th.beta, "width": th.width,
                             "ensemble": th.ensemble}
             if th.spin_weights:
@@ -89,6 +102,8 @@ def _from_exact(problem, ex, analyses, energy, out, rng) -> None:
                     for sv, w in th.spin_weights.items()}
         except DenseLimitError as exc:
             s["thermal"] = {"method": "skipped", "note": str(exc)}
+        finally:
+            bar.close()
     elif problem.basis.dim <= ESTIMATE_MAX_DIM:
         th = thermal_values(problem, energy, n_vectors=8, rng=rng)
         s["thermal"] = {"method": "thermal pure quantum states + KPM-filtered random states", "beta": th.beta,

@@ -91,12 +91,12 @@ def _timeit(fn, min_seconds: float = 0.25, min_reps: int = 3) -> float:
 
 def calibration_length(scenario: Scenario, L: int, max_dim: int = CALIBRATION_DIM) -> int:
     """Largest L_c <= L with L_c = L mod 2 (patterns keep their meaning) and basis dimension <= max_dim."""
-    from largeq.operators.problem import build_problem
+    from largeq.workflows.planning import plan_run
 
     best = None
     for Lc in range(L, 3, -2):
         try:
-            dim = build_problem(scenario.with_length(Lc)).basis.dim
+            dim = plan_run(scenario.with_length(Lc), symmetry="off", available=1 << 62).basis_dimension
         except Exception:  # noqa: BLE001 - a length the scenario cannot take
             continue
         if dim <= max_dim:
@@ -141,20 +141,27 @@ def calibrate(scenario: Scenario, L: int, *, max_dim: int = CALIBRATION_DIM) -> 
 
 # --------------------------------------------------------------------------------------------- prediction
 def _block(dim, L, n_times, available, block):
-    from largeq.workflows.relax import choose_block
+    from largeq.workflows.planning import choose_block
 
     return int(block) if block else choose_block(dim, L, n_times, available, "chebyshev")
 
 
 def predict_evolution(scenario: Scenario, cal: Calibration, *, block: int | None = None,
-                      available: int | None = None) -> dict:
-    """Products and wall time of the relax job's evolution at the scenario's length (see the module doc)."""
-    from largeq.operators.problem import build_problem
-    from largeq.engines.propagate import chebyshev_order
+                      available: int | None = None, dimension: int | None = None) -> dict:
+    """Products and wall time of the relax job's evolution at the scenario's length (see the module doc).
 
-    problem = build_problem(scenario)
-    D, L = int(problem.basis.dim), problem.n_sites
-    h = problem.hamiltonian
+    ``dimension``: states evolved (default: the magnetization / full basis; the sum of the sector dimensions on
+    the sector path, taken at the calibrated cost per state and term).  Nothing is built at the target length.
+    """
+    from largeq.engines.propagate import chebyshev_order
+    from largeq.model import build as model
+    from largeq.workflows.planning import plan_run
+
+    h = model.hamiltonian(scenario)
+    observables = model.observables(scenario, h)
+    L = scenario.n_sites
+    D = int(dimension) if dimension is not None else plan_run(scenario, symmetry="off",
+                                                                available=1 << 62).basis_dimension
     terms = int(len(h.coeff))
     a = cal.half_width * float(np.sum(np.abs(h.coeff))) / cal.coeff_sum
     times = scenario.time.times()
@@ -174,7 +181,7 @@ def predict_evolution(scenario: Scenario, cal: Calibration, *, block: int | None
     t_axpy = cal.seconds_per_axpy * sd
     t_vdot = cal.seconds_per_vdot * sd
     t_energy = cal.seconds_per_energy * sd * terms / cal.terms
-    obs_terms = {nm: int(len(o.pauli.coeff)) for nm, o in problem.observables.items()}
+    obs_terms = {nm: int(len(o.pauli.coeff)) for nm, o in observables.items()}
     t_obs = sum(cal.seconds_per_observable[nm] * sd * obs_terms[nm] / max(cal.obs_terms[nm], 1) for nm in obs_terms)
     t_output = t_energy + t_obs + 3 * t_vdot  # norm, survival overlap, per-step norm check
     bounds_products = BOUNDS_STEPS
@@ -272,24 +279,31 @@ def _from_sweep(folder, L: int) -> dict:
 
 
 def forecast(scenario: Scenario, *, from_sweep=None, calibrate_here: bool = True, baseline: bool = True,
-             block: int | None = None, available: int | None = None) -> dict:
-    """Everything ``largeq forecast`` prints and saves (a plain dict; see the module docstring)."""
+             block: int | None = None, available: int | None = None, symmetry: str = "auto") -> dict:
+    """Everything ``largeq forecast`` prints and saves (a plain dict; see the module docstring).
+
+    The path is the one ``relax`` takes (:func:`largeq.workflows.planning.plan_run`, by counting): symmetry
+    sectors when relax would use them, else the magnetization sector or the full space.  Nothing is built
+    at the target length.
+    """
     import os
 
-    from largeq.operators.problem import build_problem
+    from largeq.model import build as model
+    from largeq.workflows.planning import plan_run
 
-    problem = build_problem(scenario)
-    L, D = problem.n_sites, int(problem.basis.dim)
     avail = available_bytes() if available is None else int(available)
+    H = model.hamiltonian(scenario)
+    s = model.symmetries(scenario, H)
+    plan = plan_run(scenario, symmetry=symmetry, block=block, available=avail)
+    L, D = plan.n_sites, plan.basis_dimension
     sec = sector_weights(scenario)
     base = measure_baseline_rss(scenario) if baseline else OVERHEAD_BYTES
     n_times = scenario.time.n_points
     B = _block(D, L, n_times, avail, block)
     stab = 1
-    s = problem.symmetries
     stab *= L if s.get("translation") else 1
     stab *= 2 if s.get("reflection") else 1
-    half = problem.basis.up_spins is not None and 2 * problem.basis.up_spins == L
+    half = plan.up_spins is not None and 2 * plan.up_spins == L
     stab *= 2 if (s.get("spin_flip") and half) else 1
     d_sub = math.ceil(D / stab)
 
@@ -301,7 +315,10 @@ def forecast(scenario: Scenario, *, from_sweep=None, calibrate_here: bool = True
             d["note"] += "; interpreter baseline measured"
         return d
 
+    planned = adjusted(plan.forecast)
+    planned["note"] = f"the path relax takes: {planned['note']}"
     memory = {
+        "planned": planned,
         "chebyshev": adjusted(evolution_forecast(D, L, block=B)),
         "chebyshev_block1": adjusted(evolution_forecast(D, L, block=1)),
         "lanczos": adjusted(evolution_forecast(D, L, method="lanczos")),
@@ -309,46 +326,51 @@ def forecast(scenario: Scenario, *, from_sweep=None, calibrate_here: bool = True
         "exact_subspace": exact_forecast(d_sub).as_dict() | {"dimension": d_sub,
                                                              "note": f"dense, state's symmetric subspace ~ D / {stab}"},
     }
-    out = {"sites": L, "title": scenario.title, "basis": problem.basis.label, "basis_dimension": D,
-           "basis_reason": problem.basis_reason, "sectors": sec, "bytes_per_vector": D * COMPLEX,
-           "table_bytes": table_bytes_estimate(L, len(problem.hamiltonian.coeff)), "baseline_bytes": base,
-           "available_bytes": avail, "memory": memory, "symmetries": s, "cores": os.cpu_count()}
+    out = {"sites": L, "title": scenario.title, "basis": plan.basis_label, "basis_dimension": D,
+           "basis_reason": plan.basis_reason, "sectors": sec, "bytes_per_vector": D * COMPLEX,
+           "table_bytes": table_bytes_estimate(L, len(H.coeff)), "baseline_bytes": base,
+           "available_bytes": avail, "memory": memory, "symmetries": s, "cores": os.cpu_count(),
+           "plan": plan.as_dict()}
     if calibrate_here:
         cal = calibrate(scenario, L)
-        ev = predict_evolution(scenario, cal, block=B, available=avail)
+        ev = predict_evolution(scenario, cal, block=plan.block, available=avail, dimension=plan.dimension)
         kpm = predict_kpm(ev["seconds_per_product"], t_vdot=cal.seconds_per_vdot * D / cal.dimension)
         out.update(calibration=cal.as_dict(), evolution=ev, kpm=kpm)
     if from_sweep is not None:
         out["from_sweep"] = _from_sweep(from_sweep, L)
-    fits_mem = memory["chebyshev_block1"]["total_bytes"] <= 0.9 * avail
+    fits_mem = planned["total_bytes"] <= 0.9 * avail
     out["verdict"] = _verdict(out, fits_mem, d_sub, stab)
     return out
 
 
 def _verdict(f: dict, fits_mem: bool, d_sub: int, stab: int) -> dict:
     s = f["symmetries"]
+    plan = f["plan"]
     have = [k for k in ("conserves_magnetization", "translation", "reflection", "spin_flip") if s.get(k)]
-    uses = ["magnetization sector"] if f["basis"] and "n_up" in f["basis"] or "sector" in f["basis"] else []
-    need = f["memory"]["chebyshev_block1"]["total_bytes"]
-    lines = []
+    need = f["memory"]["planned"]["total_bytes"]
+    lines = [f"path: {plan['path']} (dimension {plan['dimension']:,}): {plan['reason']}"]
+    if plan["path"] == "sectors":
+        p = plan["parts"]
+        lines.append(f"sector path: stored sector matrices {'yes' if plan['stored_matrices'] else 'no (matrix-free)'}"
+                     f" ({format_bytes(p.get('stored_matrices', 0))}, assembly peak "
+                     f"{format_bytes(p.get('matrix_assembly', 0))}); vectors {format_bytes(p['vectors'])} "
+                     f"(4 + 2 x block {plan['block']} per sector)")
     if fits_mem:
-        lines.append(f"fits: the Chebyshev evolution needs about {format_bytes(need)} of "
+        lines.append(f"fits: the planned evolution needs about {format_bytes(need)} of "
                      f"{format_bytes(f['available_bytes'])} available")
     else:
-        lines.append(f"does NOT fit: the Chebyshev evolution needs about {format_bytes(need)}, "
-                     f"{format_bytes(f['available_bytes'])} available; a machine with at least "
-                     f"{format_bytes(need / 0.9)} free memory would run it")
+        vec = f["memory"]["chebyshev_block1"]
+        lines.append(f"does NOT fit: the planned evolution needs about {format_bytes(need)}, "
+                     f"{format_bytes(f['available_bytes'])} available here")
+        lines.append(f"machine that would run it: at least {format_bytes(need / 0.9)} of free memory (the CPU path, "
+                     f"any core count: memory decides); or the jax backend (pip install largeq[jax]) on GPUs with "
+                     f"about {format_bytes(vec['vectors'] * vec['vector_bytes'])} of device memory in total for the "
+                     f"magnetization-sector vectors, split over the devices")
     lines.append("symmetries of the model: " + (", ".join(have) or "none found"))
-    sector_note = ("; 'largeq relax' evolves in momentum/reflection/spin-flip sectors (each ~{stab}x smaller: "
-                   "dimension ~{d_sub:,}, about (4 + 2 block) vectors per sector plus the stored sector matrix) "
-                   "when every observable is diagonal in the z basis and the start is a z-basis state; with "
-                   "off-diagonal observables it stays in the magnetization sector").format(stab=stab, d_sub=d_sub)
-    lines.append("largeq's evolution uses: " + (", ".join(uses) or "the full space")
-                 + (sector_note if s.get("translation") else ""))
     if "evolution" in f:
         t = f["evolution"]["seconds"]
         cores = f["cores"] or 1
-        lines.append(f"predicted evolution time {t:.3g} s on {cores} core(s); products are memory-bandwidth "
+        lines.append(f"predicted evolution time {_human_time(t)} on {cores} core(s); products are memory-bandwidth "
                      f"bound, so k times the cores (and bandwidth) gives up to ~k times faster, and Dask sweeps "
                      f"run sizes side by side on several workers")
     return {"fits_in_memory": fits_mem, "lines": lines}

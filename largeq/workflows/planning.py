@@ -21,7 +21,11 @@ OVERHEAD_BYTES = 400 * 2**20  # interpreter, numba, scipy, h5py: measured ~300-4
 
 
 def format_bytes(n: float) -> str:
-    for unit, size in (("GiB", 2**30), ("MiB", 2**20), ("KiB", 2**10)):
+    """Bytes in the largest binary unit that keeps the number >= 1 (B .. EiB; beyond that, EiB in e-notation)."""
+    units = (("EiB", 2**60), ("PiB", 2**50), ("TiB", 2**40), ("GiB", 2**30), ("MiB", 2**20), ("KiB", 2**10))
+    if abs(n) >= 1024 * 2**60:
+        return f"{n / 2**60:.3g} EiB"
+    for unit, size in units:
         if abs(n) >= size:
             return f"{n / size:.2f} {unit}"
     return f"{int(n)} B"
@@ -183,3 +187,334 @@ class PeakRSS:
 
 
 __all__ += ["PeakRSS"]
+
+
+# ---------------------------------------------------------------------------- the run plan (no enumeration)
+def choose_block(dimension: int, n_sites: int, n_times: int, available: int, method: str) -> int:
+    """Output times per Chebyshev expansion: up to 8, while the run uses at most half the memory.
+
+    Sharing an expansion saves the O(log 1/tol) start-up of each step but holds one
+    accumulator vector per output time (common practice: a handful of outputs per block).
+    """
+    if method != "chebyshev":
+        return 1
+    block = 1
+    for k in (8, 4, 2):
+        if k < n_times and evolution_forecast(dimension, n_sites, block=k).total_bytes <= 0.5 * available:
+            block = k
+            break
+    return block
+
+
+@dataclass(frozen=True)
+class SectorCount:
+    """One symmetry sector the initial state touches: quantum numbers, dimension (counted) and weight."""
+
+    momentum: int
+    reflection: int | None
+    flip: int | None
+    dimension: int
+    weight: float
+    real: bool
+    label: str
+
+    @property
+    def key(self) -> tuple:
+        return (self.momentum, self.reflection, self.flip)
+
+
+@dataclass(frozen=True)
+class RunPlan:
+    """The path ``relax`` takes for a scenario and what it costs, decided by counting (nothing enumerated).
+
+    Attributes
+    ----------
+    path : str
+        "sectors" (momentum / reflection / spin-flip sectors), "magnetization" (one magnetization sector)
+        or "full" (the full space).
+    reason : str
+        Why this path, in words.
+    sectors_refused : str
+        Why the sector path was not taken ("" when it was).
+    n_sites, up_spins, basis_dimension, basis_label, basis_reason
+        The magnetization / full basis (what ``build_problem`` would build).
+    dimension : int
+        States evolved (sum over sectors on the sector path).
+    sectors : tuple of SectorCount
+    sector_note : str
+    block : int
+    store : bool
+        Sector matrices stored (CSR) rather than applied matrix-free.
+    parts : dict
+        Bytes of the parts of the forecast (vectors, stored matrices, their assembly, tables, interpreter).
+    forecast : MemoryForecast
+    available : int
+    """
+
+    path: str
+    reason: str
+    sectors_refused: str
+    n_sites: int
+    up_spins: int | None
+    basis_dimension: int
+    basis_label: str
+    basis_reason: str
+    dimension: int
+    sectors: tuple
+    sector_note: str
+    block: int
+    store: bool
+    parts: dict
+    forecast: MemoryForecast
+    available: int
+    products: int = 0
+    seconds_estimate: float = 0.0
+
+    @property
+    def fits(self) -> bool:
+        return self.forecast.total_bytes <= 0.9 * self.available
+
+    def as_dict(self) -> dict:
+        return {"path": self.path, "reason": self.reason, "sectors_refused": self.sectors_refused,
+                "sites": self.n_sites, "up_spins": self.up_spins, "basis_dimension": self.basis_dimension,
+                "basis": self.basis_label, "dimension": self.dimension,
+                "sectors": [{"label": c.label, "momentum": c.momentum, "reflection": c.reflection, "flip": c.flip,
+                             "dimension": c.dimension, "weight": c.weight, "real": c.real} for c in self.sectors],
+                "sector_note": self.sector_note, "block": self.block, "stored_matrices": self.store,
+                "parts": dict(self.parts), "forecast": self.forecast.as_dict(), "available_bytes": self.available,
+                "fits": self.fits, "products": self.products, "seconds_estimate": self.seconds_estimate}
+
+
+def _stabiliser(bits: int, L: int, reflection: bool, spin_flip: bool) -> list[tuple[int, int, int]]:
+    """Group elements (reflect?, flip?, shift j) that leave the z-basis state ``bits`` unchanged."""
+    full = (1 << L) - 1
+    out = []
+    for p in range(2 if reflection else 1):
+        s1 = int(format(bits, f"0{L}b")[::-1], 2) if p else bits
+        for ff in range(2 if spin_flip else 1):
+            s2 = s1 ^ full if ff else s1
+            for j in range(L):
+                s = ((s2 << j) | (s2 >> (L - j))) & full if j else s2
+                if s == bits:
+                    out.append((p, ff, j))
+    return out
+
+
+def count_state_sectors(bits: int, n_sites: int, *, reflection: bool, spin_flip: bool) -> tuple[list[SectorCount], str]:
+    """The sectors a z-basis state touches, their dimensions (Burnside counts) and weights, without enumeration.
+
+    |b> has weight |Stab(b)| / |G| in every sector whose one-dimensional character is trivial on the
+    stabiliser of b, and none elsewhere (P_chi = (1/|G|) sum_g conj(chi(g)) g, <b|P_chi|b>).  The same
+    sectors, order and notes as :func:`largeq.operators.sector_operator.split_basis_state`.
+    """
+    from largeq.basis.counting import sector_dimension
+
+    L = int(n_sites)
+    n_up = int(bits).bit_count()
+
+    def split(refl: bool):
+        stab = _stabiliser(bits, L, refl, spin_flip)
+        order = L * (2 if refl else 1) * (2 if spin_flip else 1)
+        w = len(stab) / order
+        comps, total = [], 0.0
+        for m in range(L):
+            if refl and (2 * m) % L:
+                continue
+            for r in ((1, -1) if refl else (None,)):
+                for f in ((1, -1) if spin_flip else (None,)):
+                    ok = all(abs(np.exp(2j * np.pi * m * j / L) * (r if p else 1) * (f if ff else 1) - 1) < 1e-9
+                             for p, ff, j in stab)
+                    if not ok:
+                        continue
+                    dim = sector_dimension(L, n_up, momentum=m, reflection=r, flip=f)
+                    real = (2 * m) % L == 0
+                    parts = [f"n_up = {n_up} of L = {L}", f"k = 2 pi * {m}/{L}"]
+                    if r is not None:
+                        parts.append(f"reflection {r:+d}")
+                    if f is not None:
+                        parts.append(f"spin flip {f:+d}")
+                    label = ", ".join(parts) + f" (dimension {dim:,}, {'real' if real else 'complex'})"
+                    comps.append(SectorCount(m, r, f, dim, w, real, label))
+                    total += w
+        return comps, total
+
+    comps, total = split(reflection)
+    note = (f"group: T {'R ' if reflection else ''}{'F' if spin_flip else ''}".strip()
+            + f"; |b> = {bits:#x} touches {len(comps)} sector(s), weights sum to {total:.15f}")
+    if reflection and abs(total - 1.0) > 1e-10:
+        comps, total = split(False)
+        note = (f"reflection dropped: the state has weight outside k = 0, pi (two-dimensional representations of "
+                f"the dihedral group); group T{' F' if spin_flip else ''}; {len(comps)} sector(s), weights sum to "
+                f"{total:.15f}")
+    return comps, note
+
+
+def sector_memory(dims: list[int], *, real: bool, n_groups: int, block: int, available: int) -> tuple[bool, dict]:
+    """Memory of the sector path: (store the sector matrices?, parts in bytes with 'total').
+
+    Stored sector matrix: about one entry per state for every other off-diagonal group (flip-flop terms
+    vanish on parallel spins) plus the diagonal; 12 bytes per real entry, 20 per complex one.  Assembling one
+    sector's matrix: COO arrays sized for every group, then the CSR copy (measured ~1.35x).  Sectors are
+    assembled one after the other, before the evolution allocates its vectors.
+    """
+    vec = 16 * sum(dims)
+    stored = sum(d * (n_groups / 2 + 1) * (12 if real else 20) + 8 * d for d in dims)
+    largest = max(dims)
+    build = 1.35 * largest * (n_groups + 1) * (24 if real else 32)
+    vectors = (4 + 2 * block) * vec
+    stored_peak = max(stored * (1 - largest / sum(dims)) + build, stored + vectors)
+    store = stored_peak <= 0.8 * available
+    total = int((stored_peak if store else vectors) + OVERHEAD_BYTES)
+    return store, {"vectors": int(vectors), "stored_matrices": int(stored) if store else 0,
+                   "matrix_assembly": int(build) if store else 0, "interpreter": OVERHEAD_BYTES, "total": total}
+
+
+def check_time_resolution(scenario, H) -> None:
+    """Refuse output steps too short to resolve: ||H|| dt below ``MIN_PHASE_STEP`` (||H|| <= sum |c|)."""
+    from largeq.constants import MIN_PHASE_STEP
+    from largeq.scenario.spec import MAX_TIME
+    from largeq.workflows.errors import OptionError
+
+    times = scenario.time.times()
+    if times.size < 2:
+        return
+    norm = float(np.sum(np.abs(H.coeff)))
+    if norm == 0.0:
+        return
+    dt = float(np.min(np.diff(times)))
+    if norm * dt < MIN_PHASE_STEP:
+        lo = MIN_PHASE_STEP / norm * (scenario.time.t_max / dt)
+        raise OptionError(
+            f"time.t_max = {scenario.time.t_max:g} is below the resolution of the propagation: an output step "
+            f"dt = {dt:.3g} turns the phase by ||H|| dt <= {norm * dt:.3g} < {MIN_PHASE_STEP:g} (||H|| <= {norm:.4g}); "
+            f"allowed with this grid: t_max in [{lo:.3g}, {MAX_TIME:g}]")
+
+
+#: rough cost of one product per (state x Pauli string) on one machine: 5-8 ns measured with
+#: ``largeq.workflows.forecast.calibrate`` on the 2-core development machine (L = 14-18, three built-in
+#: examples); ``largeq forecast`` measures the machine it runs on instead
+ROUGH_SECONDS_PER_STATE_TERM = 8e-9
+#: Lanczos steps of the spectral bounds (engines.bounds default)
+BOUNDS_PRODUCTS = 60
+
+
+def _time_estimate(scenario, H, dimension: int, block: int) -> tuple[int, float]:
+    """Products of the evolution (Chebyshev orders per block at the half-width bound sum |c|, an
+    overestimate by up to ~2.5x for the built-in examples) and an uncalibrated time at
+    ``ROUGH_SECONDS_PER_STATE_TERM``."""
+    from largeq.engines.propagate import chebyshev_order
+
+    times = scenario.time.times()
+    a = float(np.sum(np.abs(H.coeff)))
+    tol = scenario.numerics.tolerance
+    products = BOUNDS_PRODUCTS
+    n = times.size
+    i = 0
+    cache: dict[float, int] = {}
+    while i < n - 1:
+        j = min(n - 1, i + block)
+        span = round(float(times[j] - times[i]), 12)
+        if span not in cache:
+            cache[span] = chebyshev_order(a * span, tol)[0] - 1
+        products += cache[span]
+        i = j
+    return int(products), float(products) * dimension * max(len(H.coeff), 1) * ROUGH_SECONDS_PER_STATE_TERM
+
+
+def plan_run(scenario, *, symmetry: str = "auto", block: int | None = None, available: int | None = None,
+             model_parts: dict | None = None, check_times: bool = True) -> RunPlan:
+    """The path ``relax`` takes for ``scenario`` and its memory, from counting alone (no basis tables, no
+    enumeration of sectors, no state vector).  ``relax``, ``describe`` and ``forecast`` all call this.
+
+    ``model_parts`` may pass {"hamiltonian", "symmetries", "start", "observables"} already built;
+    ``check_times`` refuses output steps too short to resolve (:func:`check_time_resolution`).
+    """
+    from largeq.basis.spaces import basis_decision, basis_label, basis_table_bytes
+    from largeq.model import build as model
+
+    if symmetry not in ("auto", "off"):
+        from largeq.workflows.errors import OptionError
+
+        raise OptionError(f"symmetry: got {symmetry!r}; allowed: 'auto', 'off'")
+    if block is not None and (isinstance(block, bool) or not isinstance(block, (int, np.integer)) or block < 1):
+        from largeq.workflows.errors import OptionError
+
+        raise OptionError(f"block: got {block!r}; allowed: an integer >= 1 (output times per Chebyshev expansion)")
+    avail = available_bytes() if available is None else int(available)
+    parts = model_parts or {}
+    H = parts["hamiltonian"] if "hamiltonian" in parts else model.hamiltonian(scenario)
+    sym = parts["symmetries"] if "symmetries" in parts else model.symmetries(scenario, H)
+    start = parts["start"] if "start" in parts else model.initial_state(scenario)
+    observables = parts["observables"] if "observables" in parts else model.observables(scenario, H)
+    L = scenario.n_sites
+    method = scenario.numerics.method
+    n_times = scenario.time.n_points
+    if check_times:
+        check_time_resolution(scenario, H)
+    requested = scenario.sector.up_spins
+    requested = None if requested == "auto" else int(requested)
+    try:
+        up, basis_reason = basis_decision(L, conserves_magnetization=sym["conserves_magnetization"],
+                                          state_up_spins=start.up_spins, requested_up_spins=requested)
+    except ValueError as exc:
+        from largeq.workflows.errors import WorkflowError
+
+        raise WorkflowError(str(exc)) from None
+    D = (1 << L) if up is None else comb(L, up)
+    label = basis_label(L, up)
+    tables = basis_table_bytes(L, up)
+
+    refused = ""
+    if symmetry == "off":
+        refused = "symmetry sectors switched off (--symmetry off)"
+    elif method != "chebyshev":
+        refused = f"symmetry sectors need the Chebyshev method (the scenario asks for {method})"
+    elif not sym["translation"]:
+        refused = "H is not translation invariant (open chain, or site-dependent couplings/fields)"
+    elif not sym["conserves_magnetization"]:
+        refused = "H does not conserve the magnetization"
+    elif start.bits is None:
+        refused = "the initial state is not a z-basis product state"
+    elif any(not o.pauli.is_diagonal() for o in observables.values()):
+        refused = "an observable is off-diagonal in the z basis (only diagonal ones are evaluated across sectors)"
+    if not refused:
+        n_up = start.up_spins
+        comps, note = count_state_sectors(start.bits, L, reflection=sym["reflection"],
+                                          spin_flip=sym["spin_flip"] and 2 * n_up == L)
+        dims = [c.dimension for c in comps]
+        blk = block or 8
+        store, mem = sector_memory(dims, real=all(c.real for c in comps), n_groups=len(H.groups()), block=blk,
+                                   available=avail)
+        mem["tables"] = tables
+        total = mem["total"] + tables
+        mem["total"] = total
+        fc = MemoryForecast("chebyshev (sectors)", int(sum(dims)), (4 + 2 * blk) * len(dims), max(dims) * COMPLEX,
+                            int(mem["stored_matrices"]) + tables, int(total),
+                            f"{len(dims)} sector(s) {dims}; stored sector matrices: {'yes' if store else 'no'}")
+        reason = (f"H is translation invariant: the initial state splits into {len(comps)} symmetry sector(s) of "
+                  f"dimensions {', '.join(f'{d:,}' for d in dims)} (instead of {D:,}); {note}")
+        products, seconds = _time_estimate(scenario, H, int(sum(dims)), blk)
+        return RunPlan("sectors", reason, "", L, up, D, label, basis_reason, int(sum(dims)), tuple(comps), note, blk,
+                       store, mem, fc, avail, products, seconds)
+    blk = block or choose_block(D, L, n_times, avail, method)
+    fc = evolution_forecast(D, L, method=method, block=blk)
+    mem = {"vectors": int(fc.vectors * fc.vector_bytes), "tables": int(fc.table_bytes),
+           "interpreter": OVERHEAD_BYTES, "total": int(fc.total_bytes)}
+    path = "full" if up is None else "magnetization"
+    products, seconds = _time_estimate(scenario, H, D, blk if method == "chebyshev" else 1)
+    return RunPlan(path, f"{basis_reason}; {refused}", refused, L, up, D, label, basis_reason, D, (), "", blk, False,
+                   mem, fc, avail, products, seconds)
+
+
+__all__ += ["RunPlan", "SectorCount", "plan_run", "check_time_resolution", "count_state_sectors", "choose_block", "sector_memory"]
+
+
+def check_basis_fits(scenario, forecast_for, available: int | None = None) -> None:
+    """Refuse before any table is built: ``forecast_for(dimension, n_sites)`` is the command's memory
+    forecast for the basis ``build_problem`` would build (found by counting)."""
+    plan = plan_run(scenario, symmetry="off", available=available, check_times=False)
+    check_fits(forecast_for(plan.basis_dimension, plan.n_sites), n_sites=plan.n_sites, up_spins=plan.up_spins,
+               available=available)
+
+
+__all__ += ["check_basis_fits"]

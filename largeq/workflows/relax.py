@@ -11,12 +11,13 @@ run from its last checkpoint and gives the same numbers as an uninterrupted run.
 from __future__ import annotations
 
 import hashlib
-import time
-from dataclasses import dataclass
+import json
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
 
+from largeq import __version__
 from largeq.analysis.curves import analyse_curve
 from largeq.operators.problem import Problem, build_problem
 from largeq.engines.bounds import SpectralBounds, spectral_bounds
@@ -24,7 +25,7 @@ from largeq.engines.propagate import evolve
 from largeq.engines.sector_evolution import advance_sectors
 from largeq.workflows.equilibration_step import equilibration_report
 from largeq.workflows.relax_report import known_curve_summary, write_relax_report
-from largeq.workflows.planning import available_bytes, check_fits, evolution_forecast
+from largeq.workflows.planning import (available_bytes, check_fits, choose_block, plan_run)
 from largeq.reports.progress import progress_bar
 from largeq.reports.checkpoint import CHECKPOINT_NAME, Checkpointer, load_checkpoint
 from largeq.reports.run_record import run_attributes
@@ -33,6 +34,10 @@ from largeq.reports.store import (Quantity, atomic_write_text, make_run_folder, 
 from largeq.scenario.spec import Scenario, load_scenario, scenario_to_toml
 from largeq.operators.vectors import vdot
 from largeq.constants import BOUNDS_SEED, ESTIMATOR_SEED
+from largeq.engines.threads import compiled_kernels
+from largeq.reports.phases import PhaseClock
+from largeq.reports.store import read_summary
+from largeq.workflows.errors import OptionError, WorkflowError
 
 __all__ = ["RelaxOptions", "RelaxRun", "run_relaxation", "resume_relaxation", "choose_block"]
 
@@ -65,6 +70,11 @@ class RelaxOptions:
     window_start : float or None
         Start of the late averaging window (time units); None takes the scenario's ``time.window_start``
         (itself default: the last half of the run).
+    started : float or None
+        When the command started (seconds since the epoch, e.g. the process start); ``wall_seconds`` counts from
+        there.  None: from the call of :func:`run_relaxation` / :func:`resume_relaxation`.
+
+    Values outside the allowed ones raise OptionError (:func:`check_relax_options`).
     """
 
     checkpoint_seconds: float | None = None
@@ -75,6 +85,10 @@ class RelaxOptions:
     seed: int = ESTIMATOR_SEED
     symmetry: str = "auto"
     window_start: float | None = None
+    started: float | None = None
+
+    def __post_init__(self):
+        check_relax_options(self)
 
 
 def window_start_of(scenario, override: float | None = None) -> float | None:
@@ -82,30 +96,80 @@ def window_start_of(scenario, override: float | None = None) -> float | None:
     return override if override is not None else scenario.time.window_start
 
 
+#: options that change the numbers of a run: recorded in the run folder and restored by a resume
+NUMBER_OPTIONS = ("equilibration", "seed", "symmetry", "block", "window_start")
+OPTIONS_FILE = "options.json"
+
+
+def check_relax_options(o: RelaxOptions) -> None:
+    """OptionError naming the option and its allowed values for any value outside them."""
+    from largeq.workflows.equilibration_step import MODES
+
+    if o.checkpoint_seconds is not None and not (isinstance(o.checkpoint_seconds, (int, float))
+                                                 and np.isfinite(o.checkpoint_seconds) and o.checkpoint_seconds >= 0):
+        raise OptionError(f"checkpoint interval: got {o.checkpoint_seconds!r}; allowed: a number of seconds >= 0 "
+                          f"(0: at every block)")
+    if o.block is not None and (isinstance(o.block, bool) or not isinstance(o.block, (int, np.integer)) or o.block < 1):
+        raise OptionError(f"block: got {o.block!r}; allowed: an integer >= 1 (output times per Chebyshev expansion)")
+    if isinstance(o.seed, bool) or not isinstance(o.seed, (int, np.integer)) or o.seed < 0:
+        raise OptionError(f"seed: got {o.seed!r}; allowed: an integer >= 0")
+    if o.equilibration not in MODES:
+        raise OptionError(f"equilibration: got {o.equilibration!r}; allowed: {', '.join(MODES)}")
+    if o.symmetry not in ("auto", "off"):
+        raise OptionError(f"symmetry: got {o.symmetry!r}; allowed: auto, off")
+    if o.memory_available is not None and o.memory_available <= 0:
+        raise OptionError(f"memory_available: got {o.memory_available!r}; allowed: bytes > 0")
+
+
+def recorded_options(folder) -> dict | None:
+    """The number-changing options a run folder was started with (None for folders without the record)."""
+    path = Path(folder) / OPTIONS_FILE
+    if not path.exists():
+        return None
+    return json.loads(path.read_text(encoding="utf-8"))["options"]
+
+
+def _record_options(folder: Path, options: RelaxOptions) -> None:
+    rec = {"options": {k: getattr(options, k) for k in NUMBER_OPTIONS}, "largeq_version": __version__,
+           "note": "options that change the numbers; 'largeq relax --resume' restores them"}
+    atomic_write_text(folder / OPTIONS_FILE, json.dumps(rec, indent=2) + "\n")
+
+
+def restore_options(folder, options: RelaxOptions, given=None) -> RelaxOptions:
+    """``options`` with the number-changing ones taken from the run folder's record.
+
+    ``given``: names of options set explicitly (None: those differing from the defaults); a given value that
+    differs from the recorded one raises OptionError naming both.
+    """
+    rec = recorded_options(folder)
+    if rec is None:
+        return options
+    defaults = RelaxOptions()
+    if given is None:
+        given = {k for k in NUMBER_OPTIONS if getattr(options, k) != getattr(defaults, k)}
+    conflicts = [f"{k}: the run was started with {rec[k]!r}, this command asks for {getattr(options, k)!r}"
+                 for k in NUMBER_OPTIONS if k in given and k in rec and getattr(options, k) != rec[k]]
+    if conflicts:
+        raise OptionError(f"{folder}: a resume continues with the run's own options; conflicting: "
+                          + "; ".join(conflicts) + " (drop the option, or start a new run)")
+    return replace(options, **{k: rec[k] for k in NUMBER_OPTIONS if k in rec})
+
+
+def run_is_finished(folder) -> bool:
+    """A run folder whose results are complete: summary.json written and no checkpoint left."""
+    folder = Path(folder)
+    return (folder / "summary.json").exists() and not (folder / CHECKPOINT_NAME).exists()
+
+
 @dataclass(frozen=True)
 class RelaxRun:
     folder: Path
     summary: dict
+    already_finished: bool = False
 
 
 def fingerprint(scenario_text: str) -> str:
     return hashlib.sha256(scenario_text.encode()).hexdigest()[:24]
-
-
-def choose_block(dimension: int, n_sites: int, n_times: int, available: int, method: str) -> int:
-    """Output times per Chebyshev expansion: up to 8, while the run uses at most half the memory.
-
-    Sharing an expansion saves the O(log 1/tol) start-up of each step but holds one
-    accumulator vector per output time (common practice: a handful of outputs per block).
-    """
-    if method != "chebyshev":
-        return 1
-    block = 1
-    for k in (8, 4, 2):
-        if k < n_times and evolution_forecast(dimension, n_sites, block=k).total_bytes <= 0.5 * available:
-            block = k
-            break
-    return block
 
 
 class _Recorder:
@@ -143,99 +207,87 @@ class _Recorder:
 
 
 def _prepare(scenario: Scenario, options: RelaxOptions):
-    problem = build_problem(scenario)
-    basis = problem.basis
-    method = scenario.numerics.method
-    times = scenario.time.times()
+    """Plan by counting, refuse when the forecast does not fit, and only then build tables and sectors."""
     avail = available_bytes() if options.memory_available is None else int(options.memory_available)
-    plan = sector_plan(problem, options, avail, len(times))
-    if plan is not None:
-        return problem, times, plan["block"], plan["forecast"], plan
-    block = options.block or choose_block(basis.dim, basis.n_sites, len(times), avail, method)
-    forecast = evolution_forecast(basis.dim, basis.n_sites, method=method, block=block)
-    check_fits(forecast, n_sites=basis.n_sites, up_spins=basis.up_spins, available=avail)
-    return problem, times, block, forecast, None
+    plan = plan_run(scenario, symmetry=options.symmetry, block=options.block, available=avail)
+    check_fits(plan.forecast, n_sites=plan.n_sites, up_spins=plan.up_spins, available=avail)
+    problem = build_problem(scenario)
+    times = scenario.time.times()
+    if plan.path != "sectors":
+        return problem, times, plan.block, plan.forecast, None
+    return problem, times, plan.block, plan.forecast, sector_plan(problem, plan)
 
 
-def sector_plan(problem: Problem, options: RelaxOptions, available: int, n_times: int) -> dict | None:
-    """Momentum (+ reflection, spin-flip) sectors for this run, or None when they do not apply.
-
-    They apply when H is translation invariant and conserves the magnetization, the initial
-    state is a z-basis product state, every observable is diagonal in the z basis (those are
-    evaluated across sectors exactly) and the method is Chebyshev.  The sector matrices are
-    stored (CSR) when that fits in a third of the memory; otherwise the products stay matrix-free.
-    """
+def sector_plan(problem: Problem, plan) -> dict:
+    """The sector components of the initial state for a plan on the sector path (enumerates the sectors:
+    call it after the memory check).  The counted dimensions of the plan are checked against the built ones."""
     from largeq.operators.sector_operator import split_basis_state
 
     sym, start = problem.symmetries, problem.start
-    if options.symmetry == "off" or problem.scenario.numerics.method != "chebyshev":
-        return None
-    if not (sym["translation"] and sym["conserves_magnetization"] and start.bits is not None):
-        return None
-    if any(not o.pauli.is_diagonal() for o in problem.observables.values()):
-        return None  # off-diagonal observables connect sectors in ways not evaluated here
     L, n_up = problem.n_sites, start.up_spins
     comps, note = split_basis_state(start.bits, L, reflection=sym["reflection"],
                                     spin_flip=sym["spin_flip"] and 2 * n_up == L)
-    dims = [c.sector.dim for c in comps]
-    block = options.block or 8
-    n_groups = len(problem.hamiltonian.groups())
-    real = all(c.sector.real for c in comps)
-    vec = 16 * sum(dims)
-    # stored sector matrix: about one entry per state for every other off-diagonal group (flip-flop
-    # terms vanish on parallel spins) plus the diagonal; 12 bytes per real entry, 20 per complex one
-    stored_bytes = sum(d * (n_groups / 2 + 1) * (12 if real else 20) + 8 * d for d in dims)
-    # assembling one sector's matrix: COO arrays sized for every group, then the CSR copy (measured ~1.35x)
-    largest = max(dims)
-    build_bytes = 1.35 * largest * (n_groups + 1) * (24 if real else 32)
-    vectors_bytes = (4 + 2 * block) * vec
-    # sectors are assembled one after the other, before the evolution allocates its vectors
-    stored_peak = max(stored_bytes * (1 - largest / sum(dims)) + build_bytes, stored_bytes + vectors_bytes)
-    store = stored_peak <= 0.8 * available
-    total = int((stored_peak if store else vectors_bytes) + 400 * 2**20)
-    forecast = evolution_forecast(max(dims), L, method="chebyshev", block=block)
-    forecast = type(forecast)("chebyshev (sectors)", int(sum(dims)), (4 + 2 * block) * len(dims), max(dims) * 16,
-                              int(stored_bytes) if store else 0, total,
-                              f"{len(dims)} sector(s) {dims}; stored sector matrices: {'yes' if store else 'no'}")
-    check_fits(forecast, n_sites=L, up_spins=n_up, available=available)
-    reason = (f"H is translation invariant: the initial state splits into {len(comps)} symmetry sector(s) of "
-              f"dimensions {', '.join(f'{d:,}' for d in dims)} (instead of {problem.basis.dim:,}); {note}")
-    return {"components": comps, "note": note, "block": block, "store": store, "forecast": forecast,
-            "reason": reason}
+    built = [(c.sector.key, int(c.sector.dim)) for c in comps]
+    counted = [(c.key, c.dimension) for c in plan.sectors]
+    if built != counted:
+        raise RuntimeError(f"sector plan {counted} differs from the built sectors {built} (bug)")
+    return {"components": comps, "note": note, "block": plan.block, "store": plan.store, "forecast": plan.forecast,
+            "reason": plan.reason}
 
 
-def run_relaxation(scenario: Scenario, folder=None, options: RelaxOptions = RelaxOptions()) -> RelaxRun:
+def run_relaxation(scenario: Scenario, folder=None, options: RelaxOptions = RelaxOptions(), *,
+                   overwrite: bool = False) -> RelaxRun:
     """Run the relaxation job of ``scenario`` into a run folder (new, or ``folder``).
 
     Raises MemoryRefusal before allocating anything large when the run does not fit.
-    A folder that already holds an unfinished run of the same scenario is refused: use
-    :func:`resume_relaxation`.
+    A folder that already holds an unfinished run is refused (use :func:`resume_relaxation`); one that holds
+    a finished run is refused unless ``overwrite``.
     """
+    clock = PhaseClock(options.started)
     text = scenario_to_toml(scenario)
     if folder is not None and (Path(folder) / CHECKPOINT_NAME).exists():
-        raise FileExistsError(f"{folder} holds an unfinished run; continue it with 'largeq relax --resume {folder}'")
-    problem, times, block, forecast, plan = _prepare(scenario, options)  # refuse before creating the folder
+        raise WorkflowError(f"{folder} holds an unfinished run; continue it with 'largeq relax --resume {folder}'")
+    if folder is not None and (Path(folder) / SCENARIO_FILE).exists() and not overwrite:
+        state = "a finished run" if run_is_finished(folder) else "a run"
+        raise WorkflowError(f"{folder} already holds {state}; choose another --out, or pass --overwrite to replace it")
+    with clock.phase("plan and build"):
+        problem, times, block, forecast, plan = _prepare(scenario, options)  # refuse before creating the folder
     out = make_run_folder(folder, "relax")
+    if overwrite:
+        for name in ("summary.json", "results.h5", OPTIONS_FILE, "report.html"):
+            if (out / name).exists():
+                (out / name).unlink()
     atomic_write_text(out / SCENARIO_FILE, text)
+    _record_options(out, options)
     if plan is not None:
-        return _execute_sectors(problem, text, out, times, plan, options, resume=False)
-    return _execute(problem, text, out, times, block, forecast, options, resume=False)
+        return _execute_sectors(problem, text, out, times, plan, options, resume=False, clock=clock)
+    return _execute(problem, text, out, times, block, forecast, options, resume=False, clock=clock)
 
 
-def resume_relaxation(folder, options: RelaxOptions = RelaxOptions()) -> RelaxRun:
-    """Continue the run in ``folder`` from its last checkpoint (or from t = 0 if none was written)."""
+def resume_relaxation(folder, options: RelaxOptions = RelaxOptions(), *, given=None) -> RelaxRun:
+    """Continue the run in ``folder`` from its last checkpoint (or from t = 0 if none was written), with the
+    options it was started with (see :func:`restore_options`).  A finished run is returned as it is
+    (``already_finished``), nothing recomputed."""
     folder = Path(folder)
     if not (folder / SCENARIO_FILE).exists():
-        raise FileNotFoundError(f"{folder} is not a relaxation run folder (no {SCENARIO_FILE})")
+        raise WorkflowError(f"{folder} is not a relaxation run folder (no {SCENARIO_FILE})")
+    options = restore_options(folder, options, given)
+    if run_is_finished(folder):
+        return RelaxRun(folder, read_summary(folder / "summary.json"), already_finished=True)
+    clock = PhaseClock(options.started)
     scenario = load_scenario(folder / SCENARIO_FILE)
     text = scenario_to_toml(scenario)
-    problem, times, block, forecast, plan = _prepare(scenario, options)
+    with clock.phase("plan and build"):
+        problem, times, block, forecast, plan = _prepare(scenario, options)
+    if recorded_options(folder) is None:
+        _record_options(folder, options)
     if plan is not None:
-        return _execute_sectors(problem, text, folder, times, plan, options, resume=True)
-    return _execute(problem, text, folder, times, block, forecast, options, resume=True)
+        return _execute_sectors(problem, text, folder, times, plan, options, resume=True, clock=clock)
+    return _execute(problem, text, folder, times, block, forecast, options, resume=True, clock=clock)
 
 
-def _execute(problem: Problem, text: str, folder: Path, times, block, forecast, options, *, resume: bool) -> RelaxRun:
+def _execute(problem: Problem, text: str, folder: Path, times, block, forecast, options, *, resume: bool,
+             clock: PhaseClock) -> RelaxRun:
     scenario = problem.scenario
     fp = fingerprint(text)
     interval = scenario.numerics.checkpoint_seconds if options.checkpoint_seconds is None else options.checkpoint_seconds
@@ -243,7 +295,7 @@ def _execute(problem: Problem, text: str, folder: Path, times, block, forecast, 
     op = problem.operator
     psi_start, captured = problem.initial_vector()
     rec = _Recorder(problem, psi_start, len(times))
-    start_index, elapsed_before, matvecs_before = 0, 0.0, 0
+    start_index, matvecs_before = 0, 0
     psi = psi_start
     loaded = load_checkpoint(folder, expect_fingerprint=fp) if resume else None
     if loaded is not None:
@@ -254,21 +306,19 @@ def _execute(problem: Problem, text: str, folder: Path, times, block, forecast, 
         start_index = int(state["index"])
         psi = np.ascontiguousarray(state["psi"])
         rec.restore(state)
-        elapsed_before = float(state["elapsed"])
+        clock.before = float(state["elapsed"])
         matvecs_before = int(state["matvecs"])
     else:
-        t0 = time.perf_counter()
-        bounds = spectral_bounds(op, rng=np.random.default_rng(BOUNDS_SEED))
-        elapsed_before = time.perf_counter() - t0
+        with clock.phase("spectral bounds"), compiled_kernels():
+            bounds = spectral_bounds(op, rng=np.random.default_rng(BOUNDS_SEED))
         matvecs_before = bounds.steps
     last = len(times) - 1
-    wall0 = time.perf_counter()
     bar = progress_bar(last, f"relax L={problem.n_sites}", enabled=options.progress)
     bar.update(start_index)
     stats_holder = {}
 
     def state_at(i, psi_now):
-        st = {"psi": psi_now, "index": i, "block": block, "elapsed": elapsed_before + time.perf_counter() - wall0,
+        st = {"psi": psi_now, "index": i, "block": block, "elapsed": clock.total(),
               "matvecs": matvecs_before}
         st.update(rec.arrays())
         return st, {"bounds": {k: getattr(bounds, k) for k in ("e_min", "e_max", "ritz_min", "ritz_max",
@@ -286,15 +336,15 @@ def _execute(problem: Problem, text: str, folder: Path, times, block, forecast, 
     if start_index == 0 and loaded is None:
         on_output(0, times[0], psi)
     if start_index < last:
-        stats = evolve(op, psi, times, method=scenario.numerics.method, bounds=bounds,
-                       tol=scenario.numerics.tolerance, block=block, on_output=on_output,
-                       start_index=start_index, progress=on_progress, emit_start=False)
+        with clock.phase("evolution"), compiled_kernels():
+            stats = evolve(op, psi, times, method=scenario.numerics.method, bounds=bounds,
+                           tol=scenario.numerics.tolerance, block=block, on_output=on_output,
+                           start_index=start_index, progress=on_progress, emit_start=False)
         stats_holder["stats"] = stats
     bar.close()
-    wall = elapsed_before + time.perf_counter() - wall0
     stats = stats_holder.get("stats")
     matvecs = matvecs_before + (stats.matvecs if stats else 0)
-    summary = _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, matvecs, wall, captured,
+    summary = _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, matvecs, clock, captured,
                       options)
     ckfile = folder / CHECKPOINT_NAME
     if ckfile.exists():
@@ -322,7 +372,8 @@ class _SectorRecorder(_Recorder):
             self.values[n][i] = val / nrm2
 
 
-def _execute_sectors(problem: Problem, text: str, folder: Path, times, plan, options, *, resume: bool) -> RelaxRun:
+def _execute_sectors(problem: Problem, text: str, folder: Path, times, plan, options, *, resume: bool,
+                     clock: PhaseClock) -> RelaxRun:
     """The relaxation run with the state split over symmetry sectors, each evolved on its own."""
     from largeq.operators.sector_operator import CrossSectorDiagonal, SymmetricOperator
 
@@ -331,31 +382,30 @@ def _execute_sectors(problem: Problem, text: str, folder: Path, times, plan, opt
     interval = scenario.numerics.checkpoint_seconds if options.checkpoint_seconds is None else options.checkpoint_seconds
     ck = Checkpointer(folder, interval, fingerprint=fp)
     comps, block = plan["components"], plan["block"]
-    t0 = time.perf_counter()
-    ops = [SymmetricOperator(problem.hamiltonian, c.sector) for c in comps]
-    if plan["store"]:
-        ops = [op.stored() for op in ops]
+    with clock.phase("sector matrices"), compiled_kernels():
+        ops = [SymmetricOperator(problem.hamiltonian, c.sector) for c in comps]
+        if plan["store"]:
+            ops = [op.stored() for op in ops]
     cross = CrossSectorDiagonal([c.sector for c in comps], {n: o.pauli for n, o in problem.observables.items()})
     psi_start = [np.ascontiguousarray(c.vector, dtype=np.complex128) for c in comps]
     rec = _SectorRecorder(problem, ops, cross, psi_start, len(times))
     states = [v.copy() for v in psi_start]
     start_index, matvecs = 0, 0
     loaded = load_checkpoint(folder, expect_fingerprint=fp) if resume else None
-    bounds = [spectral_bounds(op, rng=np.random.default_rng(BOUNDS_SEED)) for op in ops]
+    with clock.phase("spectral bounds"), compiled_kernels():
+        bounds = [spectral_bounds(op, rng=np.random.default_rng(BOUNDS_SEED)) for op in ops]
     matvecs += sum(b.steps for b in bounds)
-    elapsed_before = time.perf_counter() - t0
     if loaded is not None:
         state, meta = loaded
         block = int(state["block"])
         start_index = int(state["index"])
         states = [np.ascontiguousarray(state[f"psi_{a}"]) for a in range(len(comps))]
         rec.restore(state)
-        elapsed_before = float(state["elapsed"])
+        clock.before = float(state["elapsed"])
         matvecs = int(state["matvecs"])
     else:
         rec.record(0, states)
     last = len(times) - 1
-    wall0 = time.perf_counter()
     bar = progress_bar(last, f"relax L={problem.n_sites} ({len(comps)} sectors)", enabled=options.progress)
     bar.update(start_index)
 
@@ -366,23 +416,23 @@ def _execute_sectors(problem: Problem, text: str, folder: Path, times, plan, opt
     def snapshot_at(progress):
         def snapshot():
             st = {f"psi_{a}": v for a, v in enumerate(progress.states)}
-            st.update(index=progress.index, block=block, elapsed=elapsed_before + time.perf_counter() - wall0,
+            st.update(index=progress.index, block=block, elapsed=clock.total(),
                       matvecs=progress.matvecs)
             st.update(rec.arrays())
             return st, {"time": float(times[progress.index])}
         ck.maybe_save(snapshot)
 
-    progress = advance_sectors(ops, states, times, bounds=bounds, tol=scenario.numerics.tolerance, block=block,
-                               start_index=start_index, on_outputs=on_outputs, on_block_end=snapshot_at,
-                               matvecs=matvecs)
+    with clock.phase("evolution"), compiled_kernels():
+        progress = advance_sectors(ops, states, times, bounds=bounds, tol=scenario.numerics.tolerance, block=block,
+                                   start_index=start_index, on_outputs=on_outputs, on_block_end=snapshot_at,
+                                   matvecs=matvecs)
     matvecs = progress.matvecs
     bar.close()
-    wall = elapsed_before + time.perf_counter() - wall0
     stats = progress
     sector_info = {"note": plan["note"], "reason": plan["reason"], "stored_matrices": plan["store"],
                    "sectors": [{"label": c.sector.label, "dimension": int(c.sector.dim), "weight": float(c.weight)}
                                for c in comps]}
-    summary = _finish(problem, text, folder, times, rec, bounds[0], block, plan["forecast"], stats, matvecs, wall,
+    summary = _finish(problem, text, folder, times, rec, bounds[0], block, plan["forecast"], stats, matvecs, clock,
                       1.0, options, sectors=sector_info)
     ckfile = folder / CHECKPOINT_NAME
     if ckfile.exists():
@@ -390,21 +440,21 @@ def _execute_sectors(problem: Problem, text: str, folder: Path, times, plan, opt
     return RelaxRun(folder, summary)
 
 
-def _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, matvecs, wall, captured,
+def _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, matvecs, clock, captured,
             options, sectors: dict | None = None) -> dict:
     scenario = problem.scenario
-    t_eq = time.perf_counter()
     ws = window_start_of(scenario, options.window_start)
-    analyses = {n: analyse_curve(times, rec.values[n], window_start=ws) for n in rec.names}
-    eq = equilibration_report(problem, times, rec.survival, analyses, mode=options.equilibration,
-                              seed=options.seed, energy=float(rec.energy[0]))
-    exact_de = {n: eq["per_observable"].get(n, {}).get("diagonal_ensemble") for n in rec.names}
-    if any(v is not None for v in exact_de.values()):
-        # the diagonal ensemble is known: the verdict must agree with it (see analysis.curves)
-        analyses = {n: analyse_curve(times, rec.values[n], window_start=ws, exact_equilibrium=exact_de[n])
-                    for n in rec.names}
-    t_eq = time.perf_counter() - t_eq
-    t_save = time.perf_counter()
+    with clock.phase("curve analysis"):
+        analyses = {n: analyse_curve(times, rec.values[n], window_start=ws) for n in rec.names}
+    with clock.phase("equilibration"):
+        eq = equilibration_report(problem, times, rec.survival, analyses, mode=options.equilibration,
+                                  seed=options.seed, energy=float(rec.energy[0]), progress=options.progress)
+        exact_de = {n: eq["per_observable"].get(n, {}).get("diagonal_ensemble") for n in rec.names}
+        if any(v is not None for v in exact_de.values()):
+            # the diagonal ensemble is known: the verdict must agree with it (see analysis.curves)
+            analyses = {n: analyse_curve(times, rec.values[n], window_start=ws, exact_equilibrium=exact_de[n])
+                        for n in rec.names}
+    wall = clock.total()
     norm_drift = float(np.max(np.abs(rec.norm - 1.0)))
     energy_drift = float(np.max(np.abs(rec.energy - rec.energy[0])))
     obs_meta = {n: problem.observables[n] for n in rec.names}
@@ -468,7 +518,6 @@ def _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, m
         seeds={"bounds_lanczos": BOUNDS_SEED, "estimators": options.seed, **_seeds(scenario)},
         equilibration=eq["summary"],
     )
-    write_results(folder / "results.h5", tree, attrs=attrs)
     summary = {
         "title": scenario.title,
         "sites": problem.n_sites,
@@ -503,15 +552,21 @@ def _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, m
         "time_grid": {"t_max": float(times[-1]), "points": int(len(times)),
                       "step": float(times[1] - times[0]) if len(times) > 1 else None},
         "seeds": attrs["seeds"],
-        "phase_seconds": {"evolution (with spectral bounds)": wall, "equilibrium analysis": t_eq},
     }
     for n, kc in known_curve_summary(scenario, times, rec.values).items():
         summary["observables"][n]["known_curve"] = kc
-    summary["phase_seconds"]["saving results"] = time.perf_counter() - t_save
+    summary["options"] = {k: getattr(options, k) for k in NUMBER_OPTIONS}
+    with clock.phase("results file"):
+        attrs["wall_seconds"] = clock.total()
+        write_results(folder / "results.h5", tree, attrs=attrs)
+    summary["wall_seconds"] = clock.total()
+    summary["phases"] = summary["phase_seconds"] = clock.as_dict()
     write_summary(folder / "summary.json", summary)
-    t_report = time.perf_counter()
-    write_relax_report(folder)  # the page shows the phases above; its own time is added to summary.json after
-    summary["phase_seconds"]["plots and report"] = time.perf_counter() - t_report
+    with clock.phase("plots and report"):
+        write_relax_report(folder)
+    # written again so that the wall time covers the whole command, the report included
+    summary["wall_seconds"] = clock.total()
+    summary["phases"] = summary["phase_seconds"] = clock.as_dict()
     write_summary(folder / "summary.json", summary)
     return summary
 

@@ -35,7 +35,8 @@ from largeq import __version__
 from largeq.operators.problem import Problem, build_problem
 from largeq.engines.bounds import SpectralBounds, spectral_bounds
 from largeq.engines.kpm import counting_function, density_of_states, dos_on_grid, local_density
-from largeq.workflows.planning import MemoryForecast, available_bytes, check_fits, format_bytes, kpm_forecast
+from largeq.workflows.planning import (MemoryForecast, available_bytes, check_basis_fits, check_fits, format_bytes,
+                                       kpm_forecast)
 from largeq.reports.progress import progress_bar
 from largeq.reports import html
 from largeq.reports import plots
@@ -166,8 +167,9 @@ def kernel_halfwidth(kernel: str, scale: float, n_moments: int) -> float:
 
 # ---------------------------------------------------------------------------- the run
 def _prepare(scenario: Scenario, options: SpectraOptions):
-    problem = build_problem(scenario)
     avail = available_bytes() if options.memory_available is None else int(options.memory_available)
+    check_basis_fits(scenario, kpm_forecast, avail)  # by counting, before any table is built
+    problem = build_problem(scenario)
     forecast = spectra_forecast(problem)
     check_fits(forecast, n_sites=problem.basis.n_sites, up_spins=problem.basis.up_spins, available=avail)
     return problem, forecast

@@ -47,6 +47,7 @@ from largeq.reports.store import (Quantity, atomic_write_text, make_run_folder, 
                                   write_summary)
 from largeq.scenario.spec import Scenario, scenario_to_toml
 from largeq.constants import MAX_DENSE_DIM, SWEEP_SEED
+from largeq.workflows.errors import OptionError, WorkflowError
 
 __all__ = ["SweepOptions", "measure_size", "task_forecast", "run_sweep", "sweep_table", "fit_trends",
            "make_client"]
@@ -114,7 +115,7 @@ def _counting(op):
 
 
 def _block(dim: int, L: int, n_times: int, memory: int) -> int:
-    from largeq.workflows.relax import choose_block
+    from largeq.workflows.planning import choose_block
 
     return choose_block(dim, L, n_times, memory, "chebyshev")
 
@@ -137,10 +138,16 @@ def task_forecast(scenario: Scenario, options: SweepOptions, memory: int | None 
     not attempted when even that exceeds ``max_dim``) and the symmetry permutation tables (4 L x dim int64
     at most, only below the size where the exact engine builds them).
     """
-    from largeq.operators.problem import build_problem
+    from types import SimpleNamespace
 
-    problem = build_problem(scenario)
-    dim, L = int(problem.basis.dim), problem.n_sites
+    from largeq.model import build as model
+    from largeq.workflows.planning import plan_run
+
+    # by counting: nothing is built, so a task far too large is refused at once, in little memory
+    plan = plan_run(scenario, symmetry="off", available=1 << 62, check_times=False)
+    dim, L = plan.basis_dimension, plan.n_sites
+    problem = SimpleNamespace(symmetries=model.symmetries(scenario), n_sites=L,
+                              basis=SimpleNamespace(up_spins=plan.up_spins))
     memory = available_bytes() if memory is None else int(memory)
     block = _block(dim, L, scenario.time.n_points, memory)
     parts = {"evolution": evolution_forecast(dim, L, block=block).total_bytes,
@@ -307,6 +314,10 @@ def _load_task(folder: Path, name: str, scenario_text: str, settings: dict) -> d
 
 
 # --------------------------------------------------------------------------------------------- dask
+#: how long a sweep waits for a Dask scheduler given with --scheduler
+SCHEDULER_TIMEOUT = "10s"
+
+
 def make_client(*, workers: int | None = None, scheduler: str | None = None):
     """A dask.distributed Client: to ``scheduler`` if given, else to a new LocalCluster on 127.0.0.1.
 
@@ -317,7 +328,12 @@ def make_client(*, workers: int | None = None, scheduler: str | None = None):
     from dask.distributed import Client, LocalCluster
 
     if scheduler:
-        return Client(scheduler, timeout="30s"), None
+        try:
+            return Client(scheduler, timeout=SCHEDULER_TIMEOUT), None
+        except (OSError, TimeoutError) as exc:
+            raise WorkflowError(f"no Dask scheduler answered at {scheduler} within {SCHEDULER_TIMEOUT} "
+                                f"({type(exc).__name__}); start one with 'dask scheduler', or drop --scheduler to "
+                                f"use a local cluster") from None
     n = int(workers) if workers else (os.cpu_count() or 1)
     cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True, host="127.0.0.1",
                            dashboard_address="127.0.0.1:0", memory_limit="auto")
@@ -379,7 +395,10 @@ def run_sweep(scenario: Scenario, sizes, folder=None, options: SweepOptions = Sw
     """
     sizes = sorted({int(L) for L in sizes})
     if len(sizes) < 1:
-        raise ValueError("give at least one size")
+        raise OptionError("sizes: give at least one chain length")
+    if options.target is not None and len(sizes) < 3:
+        raise OptionError(f"target: --target {options.target} extrapolates fits over the sizes, which need at least 3 "
+                          f"distinct sizes; got {len(sizes)} ({', '.join(map(str, sizes))})")
     tasks = _task_list(scenario, sizes, options)
     out = make_run_folder(folder, "sweep")
     atomic_write_text(out / "scenario.toml", scenario_to_toml(scenario))

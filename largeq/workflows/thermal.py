@@ -37,7 +37,8 @@ from largeq.operators.problem import build_problem
 from largeq.engines.bounds import spectral_bounds
 from largeq.operators.linalg import apply_into
 from largeq.engines.typical import canonical_averages, microcanonical_average, solve_beta
-from largeq.workflows.planning import MemoryForecast, available_bytes, check_fits, format_bytes, kpm_forecast
+from largeq.workflows.planning import (MemoryForecast, available_bytes, check_basis_fits, check_fits, format_bytes,
+                                       kpm_forecast)
 from largeq.reports.progress import progress_bar
 from largeq.reports import html
 from largeq.reports import plots
@@ -149,8 +150,9 @@ def _extend(betas: np.ndarray, upward: bool, points: int) -> np.ndarray:
 
 
 def _prepare(scenario: Scenario, options: ThermalOptions):
-    problem = build_problem(scenario)
     avail = available_bytes() if options.memory_available is None else int(options.memory_available)
+    check_basis_fits(scenario, kpm_forecast, avail)  # by counting, before any table is built
+    problem = build_problem(scenario)
     base = kpm_forecast(problem.basis.dim, problem.basis.n_sites)
     forecast = MemoryForecast("typical", base.dimension, base.vectors, base.vector_bytes, base.table_bytes,
                               base.total_bytes, "thermal pure quantum states / filtered states: 3 full-size vectors")

@@ -1,0 +1,51 @@
+"""Wall time of a whole command and of each of its phases (recorded in summary.json as ``phases``)."""
+
+from __future__ import annotations
+
+import time
+from contextlib import contextmanager
+
+__all__ = ["PhaseClock", "process_start_time"]
+
+
+def process_start_time() -> float:
+    """When this process started (seconds since the epoch): the start of a command's wall time."""
+    import psutil
+
+    return float(psutil.Process().create_time())
+
+
+class PhaseClock:
+    """Seconds per named phase and in total since ``started`` (epoch seconds; default: now).
+
+    ``before`` adds time spent in earlier processes (a resumed run's elapsed time before the interruption).
+    """
+
+    def __init__(self, started: float | None = None, before: float = 0.0):
+        now = time.time()
+        self.started = now if started is None else float(started)
+        self.before = float(before)
+        self.phases: dict[str, float] = {}
+        if now - self.started > 1e-3:
+            self.phases["startup"] = now - self.started  # interpreter start, imports, argument parsing
+
+    @contextmanager
+    def phase(self, name: str):
+        t0 = time.time()
+        try:
+            yield
+        finally:
+            self.phases[name] = self.phases.get(name, 0.0) + time.time() - t0
+
+    def add(self, name: str, seconds: float) -> None:
+        self.phases[name] = self.phases.get(name, 0.0) + float(seconds)
+
+    def total(self) -> float:
+        """Wall seconds of the whole command (plus ``before``)."""
+        return self.before + time.time() - self.started
+
+    def as_dict(self) -> dict:
+        out = {k: round(v, 6) for k, v in self.phases.items()}
+        if self.before:
+            out["before_resume"] = round(self.before, 6)
+        return out
