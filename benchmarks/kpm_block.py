@@ -21,7 +21,7 @@ from _common import emit_json, j1j2_ring, machine_line, print_table
 from largeq.basis import magnetization_basis
 from largeq.engines.bounds import spectral_bounds
 from largeq.engines.kpm import chebyshev_moments, chebyshev_moments_block
-from largeq.operators import PauliOperator
+from largeq.operators.pauli_operator import PauliOperator
 
 
 def main() -> None:

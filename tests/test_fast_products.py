@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 
 from largeq.basis import full_basis, magnetization_basis
-from largeq.operators import PauliOperator
+from largeq.operators.pauli_operator import PauliOperator
 from largeq.model.pauli import PauliSum, pauli_string
 
 from .test_operators import as_pauli, dense_reference
