@@ -16,6 +16,10 @@ The work is split by where a term acts (see ``largeq.basis`` for the block layou
 All per-low-state tables are indexed by the *position* of the low part in ``lo_list``, so
 the loop over a block reads every table sequentially.  Every output block is written by
 exactly one iteration of the outer loop, so it runs in parallel without atomics.
+
+Real operators use ``tiled_kernels`` (end of this file): the same tables applied to real
+columns (a complex vector as two, several vectors at once), the low-site terms on transposed
+tiles of blocks.
 """
 
 from __future__ import annotations
@@ -234,9 +238,10 @@ def csr_fill_kernel(n_lo, sector, up_spins, offset, lo_rank, states, gx, gptr, g
 # blocks of one class; it is copied, transposed, into a scratch array ``Xt[k, w]`` (k = rank
 # inside the class, w = t * m + j for block t of the tile and column j), so that every non-zero
 # of the low-site matrix, once its index and value are loaded, updates TILE_WIDTH contiguous
-# numbers (two AVX-512 registers) instead of one.  The diagonal part is applied in the same
-# sweep.  The high-site and straddling terms then act on the tile's output blocks in place, with
-# the index work shared by the m columns.
+# numbers instead of one.  The diagonal part is applied in the same sweep.  A second parallel
+# pass then adds the high-site and straddling terms block by block in the order of the vector
+# (the input blocks they read follow each other in memory), with the index work shared by the
+# m columns.
 
 TILE_WIDTH = 16  # lanes of a tile row; _low_row is written out for 16
 
