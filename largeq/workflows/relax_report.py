@@ -189,15 +189,26 @@ def plots_bytes(n) -> str:
     return f"{int(n)} B"
 
 
-def write_relax_report(folder) -> Path:
-    """Draw the plots and write ``report.html`` of the finished run in ``folder``; returns the page's path."""
+def draw_relax_plots(folder) -> None:
+    """Draw the PNG plots of the finished run in ``folder`` (from its summary.json, results.h5 and scenario)."""
     folder = Path(folder)
+    summary = read_summary(folder / "summary.json")
+    tree, _ = read_results(folder / "results.h5", quantities=False)
+    scenario = load_scenario(folder / "scenario.toml")
+    _plots(folder, scenario, _ordered(scenario, summary), tree)
+
+
+def write_relax_report(folder, *, draw: bool = True) -> Path:
+    """Write ``report.html`` of the finished run in ``folder`` (and first draw its plots unless ``draw`` is
+    False, for a page rewritten after :func:`draw_relax_plots`); returns the page's path."""
+    folder = Path(folder)
+    if draw:
+        draw_relax_plots(folder)
     summary = read_summary(folder / "summary.json")
     tree, attrs = read_results(folder / "results.h5", quantities=False)
     scenario_path = folder / "scenario.toml"
     scenario = load_scenario(scenario_path)
     summary = _ordered(scenario, summary)
-    _plots(folder, scenario, summary, tree)
     conventions = attrs.get("conventions") or {}
     sections = [
         html.Section("Relaxation curves", images=["relaxation.png"], table=_observable_rows(summary),
