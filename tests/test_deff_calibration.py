@@ -11,7 +11,7 @@ from largeq.operators.problem import build_problem
 from largeq.scenario.spec import parse_scenario
 
 
-def _ring_domain_wall():
+def _ring_neel():
     # J1-J2 XXZ ring off the special points (j2 = 0.4, delta2 = 0.5), Neel start, n_up = L/2 sector
     return parse_scenario({
         "title": "test ring", "chain": {"sites": 10, "boundary": "periodic"},
@@ -64,13 +64,46 @@ def _check_leave_out(pts):
     return cal
 
 
-def test_calibrated_ring_domain_wall():
-    pts, _ = _points(_ring_domain_wall(), [6, 8, 10, 12])
+@pytest.mark.slow
+def test_calibrated_ring_neel():
+    """J1-J2 ring (own couplings), Neel start: L = 14 predicted from L = 8, 10, 12 (dense eigh up to 3432)."""
+    pts, raws = _points(_ring_neel(), [8, 10, 12, 14])
     cal = _check_leave_out(pts)
-    print("ring", [(p.sites, p.exact, p.raw) for p in pts], cal.d_eff, cal.d_eff_low, cal.d_eff_high)
+    assert cal.validated
+    assert abs(cal.d_eff / pts[-1].exact - 1) < abs(pts[-1].raw / pts[-1].exact - 1)
 
 
+@pytest.mark.slow
 def test_calibrated_ising_open_tilted():
+    """Open mixed-field Ising wire (Kim-Huse parameters), tilted complex state: L = 11 from L = 7 ... 10."""
     pts, _ = _points(_ising_open_tilted(), [7, 8, 9, 10, 11])
-    cal = _check_leave_out(pts)
-    print("wire", [(p.sites, p.exact, p.raw) for p in pts], cal.d_eff, cal.d_eff_low, cal.d_eff_high)
+    _check_leave_out(pts)
+
+
+def test_constant_ratio_is_recovered_exactly():
+    # raw estimates off by exactly a factor 2.5 at every size: the calibrated value is exact at the target,
+    # the validation passes
+    pts = [CalibrationPoint(L, 2.5 * 1.7**L, 1.7**L, 0.9 * 1.7**L, 1.1 * 1.7**L, 0.05) for L in (8, 9, 10, 11)]
+    raw = 1.7**12
+    cal = calibrate_deff(pts, 12, raw, 0.9 * raw, 1.1 * raw, raw_log_err=0.05)
+    assert cal.d_eff == pytest.approx(2.5 * raw, rel=1e-9)
+    assert cal.d_eff_low < cal.d_eff < cal.d_eff_high and cal.validated and not cal.reasons
+
+
+def test_failed_validation_and_missing_sizes_are_reported():
+    # the ratio jumps at the largest exact size: its leave-out prediction fails and the reason says so
+    ratios = {8: 2.0, 9: 2.02, 10: 1.98, 11: 4.0}
+    pts = [CalibrationPoint(L, r * 10.0 * L, 10.0 * L, 9.9 * L, 10.1 * L, 0.01) for L, r in ratios.items()]
+    cal = calibrate_deff(pts, 12, 120.0, 119.0, 121.0, raw_log_err=0.01)
+    assert not cal.validated and any("validation failed" in r for r in cal.reasons)
+    none = calibrate_deff([], 12, 120.0, 119.0, 121.0)
+    assert np.isnan(none.d_eff) and any("no exact sizes" in r for r in none.reasons)
+    two = calibrate_deff(pts[:2], 12, 120.0, 119.0, 121.0)
+    assert two.validation is None and any("needs 3" in r for r in two.reasons)
+
+
+def test_estimate_without_calibration_is_not_reliable():
+    pr = build_problem(_ising_open_tilted().with_length(8))
+    est = estimate_deff(pr, n_moments=128, n_vectors=4, rng=np.random.default_rng(0))
+    assert not est.reliable and any("no exact sizes" in r for r in est.reasons)
+    assert est.calibration is None and np.isnan(est.calibrated)
