@@ -28,7 +28,7 @@ def test_crosscheck_writes_a_complete_run_folder(tmp_path, capsys):
     with h5py.File(out / "results.h5") as f:
         assert "L8" in f and "ldos_kpm" in f["L8"] and "scenario_toml" in f.attrs
     text = capsys.readouterr().out
-    assert "d_eff (KPM)" in text and "N(0)" in text and "<r>" in text
+    assert "d_eff (raw KPM formula)" in text and "N(0)" in text and "<r>" in text
 
 
 def test_crosscheck_skips_sizes_beyond_the_dense_limit(tmp_path, capsys):

@@ -93,3 +93,75 @@ def test_bad_input_refused():
         linear_fit([1, 1, 1], [1, 2, 3])
     with pytest.raises(ValueError):
         linear_fit([1, 2], [1, 2])  # scatter errors need 3 points
+
+
+# ------------------------------------------------------------------------------------ weighted fits and intervals
+def _noisy_line(seed, sig):
+    rng = np.random.default_rng(seed)
+    return 0.7 - 0.04 * SIZES + sig * rng.standard_normal(SIZES.size)
+
+
+def test_weighted_fit_matches_curve_fit_and_polyfit():
+    # reference: scipy.optimize.curve_fit(sigma=..., absolute_sigma=True) (covariance (J^T W J)^-1) and
+    # numpy.polyfit with weights 1/sigma (same minimiser)
+    from scipy.optimize import curve_fit
+
+    sig = np.array([0.006, 0.009, 0.007, 0.008, 0.006, 0.009])
+    y = _noisy_line(1, sig)
+    f = linear_fit(SIZES, y, sig, absolute=True)
+    p, cov = curve_fit(lambda x, a, b: a + b * x, SIZES, y, sigma=sig, absolute_sigma=True)
+    np.testing.assert_allclose([f.intercept, f.slope], p, rtol=1e-9)
+    np.testing.assert_allclose(f.covariance, cov, rtol=1e-7)
+    np.testing.assert_allclose(np.polyfit(SIZES, y, 1, w=1 / sig)[::-1], p, rtol=1e-9)
+    # errors from the scatter: curve_fit's absolute_sigma=False covariance (scaled by chi2/dof)
+    _, cov_rel = curve_fit(lambda x, a, b: a + b * x, SIZES, y, sigma=sig, absolute_sigma=False)
+    np.testing.assert_allclose(linear_fit(SIZES, y, sig, absolute=False).covariance, cov_rel, rtol=1e-7)
+    # "inflate": the larger of the two, never below the points' own errors
+    fi = linear_fit(SIZES, y, sig, absolute="inflate")
+    expect = cov_rel if f.chi2 / f.dof > 1 else cov
+    np.testing.assert_allclose(fi.covariance, expect, rtol=1e-7)
+    assert np.all(np.diag(fi.covariance) >= np.diag(cov) * (1 - 1e-12))
+
+
+def test_inflated_errors_grow_with_scatter_and_not_below_point_errors():
+    # points scattered 5x more than their stated errors: the inflated parameter error grows by ~sqrt(chi2/dof)
+    sig = np.full(SIZES.size, 0.002)
+    y = _noisy_line(2, 5 * sig)
+    f_abs = linear_fit(SIZES, y, sig, absolute=True)
+    f_inf = linear_fit(SIZES, y, sig, absolute="inflate")
+    assert f_inf.scale == pytest.approx(f_abs.chi2 / f_abs.dof) and f_inf.scale > 4
+    assert f_inf.intercept_err == pytest.approx(f_abs.intercept_err * np.sqrt(f_inf.scale))
+    # the extrapolation error of a fit to points with errors 0.006-0.009 is not far below those errors
+    sig = np.array([0.006, 0.009, 0.007, 0.008, 0.006, 0.009])
+    t = fit_inverse_size(SIZES, _noisy_line(3, sig), sig, absolute="inflate")
+    e = extrapolate(t, np.inf)
+    assert e.err > 0.5 * sig.min()
+
+
+def test_constant_fit_is_the_weighted_mean():
+    from largeq.analysis.fits import constant_fit
+
+    y = np.array([1.0, 1.2, 0.9])
+    s = np.array([0.1, 0.2, 0.1])
+    c = constant_fit(y, s, absolute=True)
+    w = 1 / s**2
+    assert c.intercept == pytest.approx(np.average(y, weights=w))
+    assert c.intercept_err == pytest.approx(np.sqrt(1 / w.sum()))
+    assert c.predict(123.0)[0] == pytest.approx(c.intercept)
+
+
+def test_prediction_interval_coverage_with_known_errors():
+    # new point y* = a + b x* + e*, e* ~ N(0, s*): the 90 % prediction interval (variance s*^2 + g^T C g,
+    # normal quantile) covers it 90 % of the time (binomial tolerance, 4 sigma)
+    from largeq.analysis.fits import prediction_interval
+
+    rng = np.random.default_rng(99)
+    a, b, s, s_new = 1.0, 0.5, 0.05, 0.08
+    M, hits = 1500, 0
+    for _ in range(M):
+        y = a + b * SIZES + s * rng.standard_normal(SIZES.size)
+        f = linear_fit(SIZES, y, np.full(SIZES.size, s), absolute=True)
+        y_new = a + b * 30.0 + s_new * rng.standard_normal()
+        p = prediction_interval(f, 30.0, s_new, level=0.9)
+        hits += p.low <= y_new <= p.high
+    assert abs(hits / M - 0.9) < 4 * np.sqrt(0.9 * 0.1 / M)

@@ -2,6 +2,8 @@
 
 import json
 
+import numpy as np
+
 import pytest
 
 from largeq.cli import main
@@ -73,7 +75,7 @@ def test_local_cluster_matches_serial(serial_sweep, tmp_path):
         assert a["sites"] == b["sites"] and a["matvecs"] == b["matvecs"]
         for k, v in a.items():
             if isinstance(v, float) and not any(s in k for s in ("seconds", "rss")):
-                assert b[k] == pytest.approx(v, rel=1e-10, abs=1e-13), k
+                assert b[k] == pytest.approx(v, rel=1e-10, abs=1e-13, nan_ok=True), k
 
 
 def test_memory_refusal_names_the_task():
@@ -92,3 +94,27 @@ def test_cli_serial_sweep(tmp_path, capsys):
     assert "d_eff" in out and "L = 12" in out
     s = json.loads((tmp_path / "s" / "summary.json").read_text())
     assert s["complete"] and [r["sites"] for r in s["table"]] == [6, 8, 10]
+
+
+def test_symmetry_fixed_value_not_extrapolated_and_errors_used():
+    """A diagonal ensemble that is 0 at every exact size is reported as 0 by symmetry; the other equilibrium
+    fits use the points' error bars (weighted), their errors inflated by the scatter, never shrunk."""
+    from largeq.workflows.sweep import fit_trends
+
+    table = []
+    for L, e, err in [(8, 0.30, 0.006), (10, 0.28, 0.009), (12, 0.27, 0.007), (14, 0.262, 0.008)]:
+        table.append({"sites": L, "d_eff": 2.0**(L / 2), "d_eff_method": "exact",
+                      "a.equilibrium": e, "a.equilibrium_err": err, "a.sigma": 0.1 / L,
+                      "z.equilibrium": 0.01 * (-1) ** L, "z.equilibrium_err": err, "z.sigma": 0.1 / L,
+                      "z.equilibrium_exact": 1e-17 * L})
+    fits = fit_trends(table, ["a", "z"], target=None)
+    assert "z" in fits["fixed_by_symmetry"] and "z.equilibrium" not in fits["trends"]
+    ex = fits["extrapolations"]["a.equilibrium"]["infinity"]
+    # weighted least squares at 1/L* = 0 with the given errors: the error of the intercept is at least the
+    # weighted-fit error from the points' own errors (numpy.polyfit with weights and cov='unscaled')
+    x = 1.0 / np.array([8, 10, 12, 14.0])
+    y = np.array([0.30, 0.28, 0.27, 0.262])
+    s = np.array([0.006, 0.009, 0.007, 0.008])
+    p, cov = np.polyfit(x, y, 1, w=1 / s, cov="unscaled")
+    assert ex["value"] == pytest.approx(p[1], rel=1e-9)
+    assert ex["transformed_err"] >= np.sqrt(cov[1, 1]) * (1 - 1e-9)

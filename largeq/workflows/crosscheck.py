@@ -4,9 +4,12 @@ For each chain length L (``scenario.with_length(L)``) whose state's symmetric su
 diagonalization, compute exactly (``largeq.analysis.equilibration.exact_equilibration``) and by the estimators
 that also work past the exact-diagonalization wall, and compare:
 
-* d_eff: KPM estimate (``estimate_deff``) and the survival-probability plateau vs exact 1 / sum p_E^2;
+* d_eff: raw KPM estimate (``estimate_deff``), the calibrated estimate (raw x the ratio exact / raw fitted over
+  the *smaller* sizes of the same run and extrapolated, with its prediction interval and leave-out validation,
+  ``calibrate_deff``) and the survival-probability plateau vs exact 1 / sum p_E^2;
 * <A>_inf: late-window mean of the relaxation curve (``evolve`` over the scenario's time grid, then
-  ``analyse_curve``) vs the diagonal ensemble;
+  ``analyse_curve`` with the exact diagonal ensemble, so "settled" requires agreement with it) vs the
+  diagonal ensemble;
 * sigma_A^2: late-window temporal variance vs the exact infinite-time variance (and the bound);
 * LDOS and DOS: Kolmogorov-Smirnov distance sup_E |F_KPM(E) - F_exact(E)| of the normalised counting
   functions (the KPM one is the exact integral of the kernel-damped series, the exact one a step
@@ -32,7 +35,7 @@ from largeq.analysis.curves import analyse_curve
 from largeq.operators.problem import build_problem
 from largeq.engines.kpm import kernel_factors, reconstruct_cumulative
 from largeq.engines.propagate import evolve
-from largeq.analysis.equilibration import (DenseLimitError, default_bounds, estimate_deff,
+from largeq.analysis.equilibration import (CalibrationPoint, DenseLimitError, default_bounds, estimate_deff,
                                            exact_equilibration, exact_thermal_values, thermal_values)
 from largeq.reports.progress import progress_bar
 from largeq.reports import html
@@ -63,16 +66,30 @@ class CrosscheckOptions:
     max_dim : int
         Largest dense diagonalization (default MAX_DENSE_DIM, 13000).
     progress : bool or None
+    window_start : float or None
+        Start of the late averaging window (time units); None: the scenario's ``time.window_start``, else
+        the last half of the run.
+    dos_vectors : int or None
+        Random vectors of the KPM DOS in the d_eff estimate (default: ``n_vectors``); the DOS noise is the
+        raw estimate's only random error, and it is large where the state's energy sits in a sparse part
+        of the spectrum.
     """
 
-    def __init__(self, n_moments: int = 256, n_vectors: int = 20, seed: int = CROSSCHECK_SEED, max_dim: int = MAX_DENSE_DIM,
-                 progress: bool | None = None):
+    def __init__(self, n_moments: int = 256, n_vectors: int = 20, seed: int = CROSSCHECK_SEED,
+                 max_dim: int = MAX_DENSE_DIM,
+                 progress: bool | None = None, window_start: float | None = None, dos_vectors: int | None = None):
         if int(n_moments) != n_moments or n_moments < 16:
             raise ValueError(f"n_moments must be an integer >= 16, got {n_moments!r}")
         if int(n_vectors) != n_vectors or n_vectors < 2:
             raise ValueError(f"n_vectors must be an integer >= 2 (error bars need two), got {n_vectors!r}")
+        if dos_vectors is not None and (int(dos_vectors) != dos_vectors or dos_vectors < 2):
+            raise ValueError(f"dos_vectors must be an integer >= 2, got {dos_vectors!r}")
+        if window_start is not None and not (np.isfinite(window_start) and window_start >= 0):
+            raise ValueError(f"window_start must be a finite time >= 0, got {window_start!r}")
         self.n_moments, self.n_vectors, self.seed = int(n_moments), int(n_vectors), int(seed)
         self.max_dim, self.progress = int(max_dim), progress
+        self.window_start = None if window_start is None else float(window_start)
+        self.dos_vectors = int(n_vectors if dos_vectors is None else dos_vectors)
 
 
 def _exact_cumulative_damped(energies, weights, density):
@@ -128,8 +145,19 @@ def _rel(est, exact):
     return (est - exact) / abs(exact) if exact != 0 else float("nan")
 
 
-def crosscheck_size(scenario, L: int, options: CrosscheckOptions) -> dict:
+def calibration_point(row: dict) -> CalibrationPoint | None:
+    """The (exact, raw) d_eff pair of a finished cross-check row, for calibrating larger sizes."""
+    if row.get("status") != "ok":
+        return None
+    return CalibrationPoint(int(row["sites"]), float(row["d_eff_exact"]), float(row["d_eff_kpm"]),
+                            float(row["d_eff_kpm_low"]), float(row["d_eff_kpm_high"]), row.get("d_eff_kpm_log_err"))
+
+
+def crosscheck_size(scenario, L: int, options: CrosscheckOptions, previous=()) -> dict:
     """Exact values and estimates for one chain length (see the module docstring).
+
+    ``previous``: rows of smaller sizes of the same scenario (their exact and raw d_eff calibrate this
+    size's estimate; never this size's own exact value).
 
     Returns
     -------
@@ -149,9 +177,14 @@ def crosscheck_size(scenario, L: int, options: CrosscheckOptions) -> dict:
     rngs = np.random.default_rng([options.seed, L]).spawn(2)
     bounds = default_bounds(problem.operator)
     times, curves, surv, stats = _relaxation(problem, psi, bounds)
-    analyses = {n: analyse_curve(times, v) for n, v in curves.items()}
-    est = estimate_deff(problem, n_moments=options.n_moments, n_vectors=options.n_vectors, rng=rngs[0],
-                        psi=psi, bounds=bounds, survival=(times, surv), level_ratio=ex.level_ratio, group=group)
+    ws = options.window_start if options.window_start is not None else sc.time.window_start
+    analyses = {n: analyse_curve(times, v, window_start=ws, exact_equilibrium=ex.observables[n].equilibrium)
+                for n, v in curves.items()}
+    points = [p for p in (calibration_point(r) for r in previous) if p is not None and p.sites < L]
+    est = estimate_deff(problem, n_moments=options.n_moments, n_vectors=options.dos_vectors, rng=rngs[0],
+                        psi=psi, bounds=bounds, survival=(times, surv), level_ratio=ex.level_ratio, group=group,
+                        calibration=points)
+    cal = est.calibration
     ldos_ks, ldos_ks_d = ks_distances(est.ldos.energies, est.ldos.cumulative, ex.quench.level_energies,
                                       ex.quench.level_weights, est.ldos)
     dos_ks, dos_ks_d = ks_distances(est.dos.energies, est.dos.cumulative, ex.energies, np.ones(ex.energies.size),
@@ -163,7 +196,9 @@ def crosscheck_size(scenario, L: int, options: CrosscheckOptions) -> dict:
         a = analyses[n]
         obs[n] = {
             "equilibrium_exact": o.equilibrium, "equilibrium_curve": a.equilibrium,
-            "equilibrium_curve_err": a.equilibrium_err, "settled": a.settled,
+            "equilibrium_curve_err": a.equilibrium_err, "settled": a.settled, "status": a.status,
+            "equilibrium_curve_z": a.exact_z, "relaxation_time": a.relaxation_time,
+            "window": [a.window_start, a.window_end],
             "variance_exact": o.variance, "variance_curve": a.variance,
             "bound": o.bound_range, "bound_norm": o.bound_norm, "variance_over_bound": o.ratio, "bound_holds": o.holds,
             "canonical_exact": tx.canonical[n], "canonical_tpq": th.canonical[n], "canonical_tpq_err": th.canonical_err[n],
@@ -176,6 +211,12 @@ def crosscheck_size(scenario, L: int, options: CrosscheckOptions) -> dict:
         "initial_weight_in_basis": captured, "energy_mean": ex.energy_mean, "energy_variance": ex.energy_variance,
         "d_eff_exact": ex.d_eff, "d_eff_kpm": est.d_eff, "d_eff_kpm_low": est.d_eff_low,
         "d_eff_kpm_high": est.d_eff_high, "d_eff_kpm_rel_error": _rel(est.d_eff, ex.d_eff),
+        "d_eff_kpm_log_err": est.log_err, "d_eff_raw": est.d_eff,
+        "d_eff_estimate": cal.d_eff, "d_eff_estimate_low": cal.d_eff_low, "d_eff_estimate_high": cal.d_eff_high,
+        "d_eff_estimate_rel_error": _rel(cal.d_eff, ex.d_eff),
+        "d_eff_estimate_covers": bool(cal.d_eff_low <= ex.d_eff <= cal.d_eff_high),
+        "d_eff_estimate_level": cal.level, "d_eff_estimate_from_sizes": list(cal.used),
+        "calibration": cal.summary(), "reasons": list(est.reasons),
         "d_eff_plateau": est.plateau_d_eff, "d_eff_plateau_low": est.plateau_low, "d_eff_plateau_high": est.plateau_high,
         "eta": est.eta, "narrow": est.narrow, "reliable": est.reliable, "warnings": list(est.warnings),
         "assumption": est.assumption, "ldos_width": est.estimate.ldos_width, "kpm_resolution": est.estimate.resolution,
@@ -249,9 +290,13 @@ def format_table(row: dict) -> str:
     def add(label, exact, est, err):
         lines.append(f"  {label:34s} {exact:>12s} {est:>24s} {err:>10s}")
 
-    add("d_eff (KPM)", _fmt(row["d_eff_exact"]),
+    add("d_eff (raw KPM formula)", _fmt(row["d_eff_exact"]),
         f"{_fmt(row['d_eff_kpm'])} [{_fmt(row['d_eff_kpm_low'], 3)}, {_fmt(row['d_eff_kpm_high'], 3)}]",
         _pct(row["d_eff_kpm_rel_error"]))
+    if row.get("d_eff_estimate") is not None and np.isfinite(row["d_eff_estimate"]):
+        add(f"d_eff (calibrated on L={','.join(map(str, row['d_eff_estimate_from_sizes']))})", _fmt(row["d_eff_exact"]),
+            f"{_fmt(row['d_eff_estimate'])} [{_fmt(row['d_eff_estimate_low'], 3)}, {_fmt(row['d_eff_estimate_high'], 3)}]",
+            _pct(row["d_eff_estimate_rel_error"]))
     if row["d_eff_plateau"] is not None:
         add("d_eff (survival plateau)", _fmt(row["d_eff_exact"]),
             f"{_fmt(row['d_eff_plateau'])} [{_fmt(row['d_eff_plateau_low'], 3)}, {_fmt(row['d_eff_plateau_high'], 3)}]",
@@ -274,8 +319,19 @@ def format_table(row: dict) -> str:
         add(f"microcanonical {n}", fmt(o["microcanonical_exact"], EXACT_ACCURACY),
             f"{_fmt(o['microcanonical_tpq'])} +- {o['microcanonical_tpq_err']:.1g}",
             f"{o['microcanonical_tpq'] - o['microcanonical_exact']:+.1e}")
-    for w in row["warnings"]:
-        lines.append(f"  warning: {w}")
+    v = (row.get("calibration") or {}).get("validation")
+    if v:
+        lines.append(f"  leave-out check: L = {v['sites']} predicted {v['predicted']:.4g} [{v['low']:.4g}, {v['high']:.4g}] "
+                     f"from L = {', '.join(map(str, v['from_sizes']))}, exact {v['exact']:.4g}: "
+                     + ("passed" if v["passed"] else "FAILED"))
+    lines.append("  d_eff estimate reliable: " + ("yes" if row["reliable"] else "no"))
+    for w in row.get("reasons", row["warnings"]):
+        lines.append(f"  reason: {w}")
+    for n, o in row["observables"].items():
+        if not o.get("settled", True):
+            lines.append(f"  {n}: window mean {o.get('status', 'not settled')} ({o['equilibrium_curve_z']:.1f} errors "
+                         "from the diagonal ensemble)" if o.get("equilibrium_curve_z") is not None else
+                         f"  {n}: not settled")
     lines.append(f"  ({row['seconds']:.1f} s)")
     return "\n".join(lines)
 
@@ -286,7 +342,8 @@ def _save(folder: Path, scenario, rows: list, options: CrosscheckOptions, final:
     summary = {
         "title": scenario.title, "command": "crosscheck", "complete": final,
         "options": {"n_moments": options.n_moments, "n_vectors": options.n_vectors, "seed": options.seed,
-                    "max_dim": options.max_dim},
+                    "max_dim": options.max_dim, "window_start": options.window_start,
+                    "dos_vectors": options.dos_vectors},
         "sizes": clean,
         "references": {
             "bound": "P. Reimann, PRL 101, 190403 (2008); A. J. Short, NJP 13, 053009 (2011); "
@@ -304,7 +361,8 @@ def _save(folder: Path, scenario, rows: list, options: CrosscheckOptions, final:
             continue
         g = {k: v for k, v in r["_arrays"].items()}
         g["numbers"] = {k: v for k, v in c.items() if isinstance(v, (int, float, bool, np.floating)) and v is not None}
-        g["observables"] = {n: dict(o) for n, o in c["observables"].items()}
+        g["observables"] = {n: {k: v for k, v in o.items() if v is not None and not isinstance(v, (list, str))}
+                            for n, o in c["observables"].items()}
         tree[f"L{r['sites']}"] = g
     attrs = run_attributes("crosscheck", text, scenario.title, options=summary["options"], complete=final,
                            references=summary["references"])
@@ -319,8 +377,10 @@ def _plots_and_report(folder: Path, scenario, rows: list) -> None:
     sizes = [r["sites"] for r in ok]
     series = {
         "d_eff exact": ([r["d_eff_exact"] for r in ok], None),
-        "d_eff KPM estimate": ([r["d_eff_kpm"] for r in ok],
-                               [0.5 * (r["d_eff_kpm_high"] - r["d_eff_kpm_low"]) for r in ok]),
+        "d_eff raw KPM formula": ([r["d_eff_kpm"] for r in ok],
+                                  [0.5 * (r["d_eff_kpm_high"] - r["d_eff_kpm_low"]) for r in ok]),
+        "d_eff calibrated (smaller sizes)": ([r["d_eff_estimate"] for r in ok],
+                                             [0.5 * (r["d_eff_estimate_high"] - r["d_eff_estimate_low"]) for r in ok]),
         "d_eff survival plateau": ([r["d_eff_plateau"] if r["d_eff_plateau"] is not None else np.nan for r in ok],
                                    [0.5 * (r["d_eff_plateau_high"] - r["d_eff_plateau_low"])
                                     if r["d_eff_plateau"] is not None else np.nan for r in ok]),
@@ -346,6 +406,9 @@ def _plots_and_report(folder: Path, scenario, rows: list) -> None:
              f"error {_pct(r['d_eff_kpm_rel_error'])}"),
             ("β at ⟨H⟩ exact / TPQ", fmt(r["beta_exact"], EXACT_ACCURACY, 5),
              f"TPQ {fmt_error(r['beta_tpq'], r['beta_tpq_err'])}; difference {_error(r['beta_tpq'], r['beta_exact'], r['beta_tpq_err'])}"),
+            ("d_eff calibrated", html.format_number(r["d_eff_estimate"]),
+             f"interval {html.format_number(r['d_eff_estimate_low'])} .. {html.format_number(r['d_eff_estimate_high'])}; "
+             f"error {_pct(r['d_eff_estimate_rel_error'])}; reliable: {'yes' if r['reliable'] else 'no'}"),
             ("d_eff survival plateau", html.format_number(r["d_eff_plateau"]) if r["d_eff_plateau"] else "-", ""),
             ("<r>", html.format_value_error(r["level_ratio"], r["level_ratio_err"]) if r["level_ratio"] is not None else "-",
              r["level_block"]),
@@ -364,7 +427,7 @@ def _plots_and_report(folder: Path, scenario, rows: list) -> None:
                  f"TPQ {fmt_error(o['microcanonical_tpq'], o['microcanonical_tpq_err'])}"),
             ]
         sections.append(html.Section(f"L = {r['sites']}", table=table,
-                                     paragraphs=[r["subspace"]] + [f"warning: {w}" for w in r["warnings"]]))
+                                     paragraphs=[r["subspace"]] + [f"reason: {w}" for w in r.get("reasons", r["warnings"])]))
     skipped = [r for r in rows if r["status"] != "ok"]
     if skipped:
         sections.append(html.Section("Skipped sizes", paragraphs=[f"L = {r['sites']}: {r['reason']}" for r in skipped]))
@@ -375,7 +438,7 @@ def _plots_and_report(folder: Path, scenario, rows: list) -> None:
 def run_crosscheck(scenario, sizes, folder=None, options: CrosscheckOptions | None = None, *, echo=print):
     """Cross-check ``scenario`` at each size; returns (folder, summary). Saves after every size."""
     options = options or CrosscheckOptions()
-    sizes = [int(s) for s in sizes]
+    sizes = sorted({int(s) for s in sizes})  # ascending: each size is calibrated on the smaller ones
     if not sizes:
         raise ValueError("give at least one size")
     from largeq.workflows.planning import available_bytes, check_basis_fits, evolution_forecast
@@ -390,7 +453,7 @@ def run_crosscheck(scenario, sizes, folder=None, options: CrosscheckOptions | No
     bar = progress_bar(len(sizes), "crosscheck", enabled=options.progress)
     summary = None
     for s in sizes:
-        row = crosscheck_size(scenario, s, options)
+        row = crosscheck_size(scenario, s, options, previous=rows)
         rows.append(row)
         if echo is not None:
             echo(format_table(row))

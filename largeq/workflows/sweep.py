@@ -53,6 +53,8 @@ __all__ = ["SweepOptions", "measure_size", "task_forecast", "run_sweep", "sweep_
            "make_client"]
 
 SIZES_DIR = "sizes"
+#: An exact diagonal-ensemble value below this magnitude at every exact size counts as fixed at 0 by symmetry.
+SYMMETRY_ZERO = 1e-10
 
 
 @dataclass(frozen=True)
@@ -76,6 +78,9 @@ class SweepOptions:
         Seed of the random vectors (one child per size and realization).
     kpm_everywhere : bool
         Also estimate d_eff by KPM where the exact value is available (to compare).
+    window_start : float or None
+        Start of the late averaging window (time units); None: the scenario's ``time.window_start``, else
+        the last half of the run.
     """
 
     target: int | None = None
@@ -87,6 +92,7 @@ class SweepOptions:
     thermal_vectors: int = 10
     seed: int = SWEEP_SEED
     kpm_everywhere: bool = False
+    window_start: float | None = None
 
     def task_settings(self) -> dict:
         """The settings that change a task's numbers (a saved task is reused only if they match)."""
@@ -216,7 +222,10 @@ def measure_size(scenario: Scenario, options: SweepOptions, *, realization: int 
                        on_output=on_output)
         evolution_seconds = time.perf_counter() - t_ev
         evolution_matvecs = count["n"] - mv0
-        analyses = {n: analyse_curve(times, v) for n, v in vals.items()}
+        ws = options.window_start if options.window_start is not None else scenario.time.window_start
+        analyses = {n: analyse_curve(times, v, window_start=ws,
+                                     exact_equilibrium=None if ex is None else ex.observables[n].equilibrium)
+                    for n, v in vals.items()}
         e_mean = float(energy[0])
         # d_eff: exact, else KPM
         row["energy_mean"] = e_mean
@@ -241,7 +250,7 @@ def measure_size(scenario: Scenario, options: SweepOptions, *, realization: int 
         for n, a in analyses.items():
             o = {"equilibrium": a.equilibrium, "equilibrium_err": a.equilibrium_err,
                  "temporal_variance": a.variance, "sigma": math.sqrt(max(a.variance, 0.0)),
-                 "relaxation_time": a.relaxation_time, "settled": bool(a.settled)}
+                 "relaxation_time": a.relaxation_time, "settled": bool(a.settled), "status": a.status}
             if ex is not None:
                 e = ex.observables[n]
                 o.update(equilibrium_exact=e.equilibrium, variance_exact=e.variance,
@@ -489,7 +498,8 @@ def sweep_table(sizes, tasks, rows: dict, observables) -> list[dict]:
         put("energy_mean", [g["energy_mean"] for g in group])
         for name in observables:
             for key in ("equilibrium", "equilibrium_err", "temporal_variance", "sigma", "relaxation_time",
-                        "equilibrium_exact", "variance_exact", "sigma_exact", "bound", "canonical", "microcanonical"):
+                        "equilibrium_exact", "variance_exact", "sigma_exact", "bound", "canonical", "canonical_err",
+                        "microcanonical", "microcanonical_err"):
                 vals = [g["observables"][name].get(key) for g in group]
                 if all(v is None for v in vals):
                     continue
@@ -510,14 +520,16 @@ def _errors(table, key):
 def fit_trends(table: list[dict], observables, target: int | None) -> dict:
     """Fits of d_eff, sigma_A and <A>_inf over L and extrapolations (see the module docstring).
 
-    With disorder realizations the standard errors weight the fit (errors taken as given); with one
-    realization the points are exact or deterministic estimates and the parameter errors come from the scatter
-    about the line (chi^2 / dof).  Fits need at least 3 sizes.  The d_eff fit uses only exact values when at
-    least 3 sizes have them.
+    Every point with an error bar is weighted by it (weighted least squares), and the parameter errors are
+    those of the points, inflated by the scatter about the line when chi^2 / dof > 1 (never shrunk below what
+    the points' errors give); points without errors (one realization of d_eff or sigma) take their parameter
+    errors from the scatter (chi^2 / dof).  Fits need at least 3 sizes.  The d_eff fit uses only exact values
+    when at least 3 sizes have them.  An equilibrium value whose exact diagonal ensemble is 0 at every exact
+    size (to 1e-10: fixed by a symmetry of the state and H) is reported as 0 by symmetry, not extrapolated.
     """
     from largeq.analysis.fits import extrapolate, fit_inverse_size, fit_log_deff, fit_log_sigma
 
-    out = {"trends": {}, "extrapolations": {}, "notes": []}
+    out = {"trends": {}, "extrapolations": {}, "notes": [], "fixed_by_symmetry": {}}
     if len(table) < 3:
         out["notes"].append("fewer than 3 sizes: no fits")
         return out
@@ -542,7 +554,7 @@ def fit_trends(table: list[dict], observables, target: int | None) -> dict:
     L = np.array([t["sites"] for t in rows], float)
     err, absolute = _errors(rows, "d_eff")
     try:
-        record("d_eff", fit_log_deff(L, [t["d_eff"] for t in rows], err, absolute=absolute if err is not None else None))
+        record("d_eff", fit_log_deff(L, [t["d_eff"] for t in rows], err, absolute="inflate" if err is not None else None))
     except ValueError as exc:
         out["notes"].append(f"d_eff: {exc}")
     Lall = np.array([t["sites"] for t in table], float)
@@ -550,16 +562,26 @@ def fit_trends(table: list[dict], observables, target: int | None) -> dict:
         try:
             err, absolute = _errors(table, f"{name}.sigma")
             record(f"{name}.sigma", fit_log_sigma(Lall, [t[f"{name}.sigma"] for t in table], err,
-                                                  quantity=f"sigma_A ({name})"))
+                                                  quantity=f"sigma_A ({name})",
+                                                  absolute="inflate" if err is not None else None))
         except (ValueError, KeyError) as exc:
             out["notes"].append(f"{name} sigma: {exc}")
+        exact = [t.get(f"{name}.equilibrium_exact") for t in table]
+        exact = [x for x in exact if x is not None and np.isfinite(x)]
+        if exact and max(abs(x) for x in exact) <= SYMMETRY_ZERO:
+            out["fixed_by_symmetry"][name] = {"value": 0.0, "sizes_checked": len(exact),
+                                              "largest_exact_magnitude": max(abs(x) for x in exact)}
+            out["notes"].append(f"<{name}>_inf = 0 by symmetry (the exact diagonal ensemble is 0 to "
+                                f"{SYMMETRY_ZERO:g} at all {len(exact)} exact sizes): shown as 0, not extrapolated")
+            continue
         try:
             err, absolute = _errors(table, f"{name}.equilibrium")
             if err is None:
                 e = np.array([t[f"{name}.equilibrium_err"] for t in table], float)
-                err, absolute = (e, False) if np.all(np.isfinite(e) & (e > 0)) else (None, None)
+                err, absolute = (e, True) if np.all(np.isfinite(e) & (e > 0)) else (None, None)
             record(f"{name}.equilibrium", fit_inverse_size(Lall, [t[f"{name}.equilibrium"] for t in table], err,
-                                                           quantity=f"<{name}>_inf", absolute=absolute))
+                                                           quantity=f"<{name}>_inf",
+                                                           absolute="inflate" if err is not None else None))
         except (ValueError, KeyError) as exc:
             out["notes"].append(f"{name} equilibrium: {exc}")
     return out
@@ -673,6 +695,9 @@ def _plots_and_report(out, scenario, table, fits, objs, names, options) -> None:
         for where, e in fits["extrapolations"].get(key, {}).items():
             rows.append((f"  at L = {where}", html.format_number(e["value"]),
                          f"1σ band [{html.format_number(e['low'])}, {html.format_number(e['high'])}]"))
+    for key, fz in fits.get("fixed_by_symmetry", {}).items():
+        rows.append((f"<{key}>_inf", "0 (by symmetry)",
+                     f"exact diagonal ensemble |value| <= {fz['largest_exact_magnitude']:.1e} at {fz['sizes_checked']} sizes"))
     table_rows = [(f"L = {r['sites']}", html.format_number(r["d_eff"]),
                    f"{r['d_eff_method']}; dim {r['basis_dimension']:,}; {int(r['matvecs'])} products; "
                    f"{r['wall_seconds']:.1f} s; peak {format_bytes(r['peak_rss_bytes'])}") for r in table]
