@@ -106,7 +106,12 @@ def _print_disorder_summary(run) -> None:
 def _print_relax_summary(run) -> None:
     s = run.summary
     print(f"{s['title']}")
-    print(f"  L = {s['sites']}, {s['basis']['kind']} basis, dimension {s['basis']['dimension']:,}; "
+    b = s["basis"]
+    where = (f"{b['kind']} basis, dimension {b['dimension']:,}" if b["kind"] != "symmetry-sector" else
+             f"{b['sector_count']} symmetry sector(s) of dimensions "
+             f"{' + '.join(f'{d:,}' for d in b['sector_dimensions'][:8])}{' + ...' if b['sector_count'] > 8 else ''}"
+             f" = {b['dimension']:,} (instead of {b['replaces']['kind']} dimension {b['replaces']['dimension']:,})")
+    print(f"  L = {s['sites']}, {where}; "
           f"{s['method']} (tolerance {s['tolerance']:g}); {s['matvecs']} products in {s['wall_seconds']:.1f} s")
     print(f"  initial energy {s['initial_energy']:.6g}; energy drift {s['energy_drift']:.2g}; norm drift {s['norm_drift']:.2g}")
     eq = s.get("equilibration", {})

@@ -33,7 +33,7 @@ from largeq.basis.sectors import GroupSpec, SymmetricSector, orbit_representativ
 from largeq.operators.vectors import threads_for, vdot
 
 __all__ = ["SymmetricOperator", "StoredSectorMatrix", "is_invariant", "split_basis_state", "SectorComponent", "CrossSectorDiagonal",
-           "split_product_state", "product_sector_weights", "CrossSectorObservables", "covariant_part",
+           "split_product_state", "product_sector_weights", "choose_sectors", "sector_dimensions", "CrossSectorObservables", "covariant_part",
            "sector_observables", "split_start", "evolve_split", "stabiliser_average", "expand_to_magnetization", "project_from_magnetization"]
 
 
@@ -467,21 +467,70 @@ def product_sector_weights(spinors, *, conserve_magnetization: bool, translation
     return out
 
 
-def split_product_state(spinors, *, conserve_magnetization: bool, translation: bool = True, reflection: bool = False,
-                        spin_flip: bool = False, lookup: str = "block", tol: float = 1e-14
-                        ) -> tuple[list[SectorComponent], str]:
-    """Split a product state prod_j (spinors[j, 0] |down> + spinors[j, 1] |up>) into the sectors it touches.
+def _site_map(g, L: int) -> list[int]:
+    """Site k of g^-1 s is read from site map[k] of s (g = T^j F^f R^p), see :func:`_element_overlaps`."""
+    j, p, _ = g
+    return [(((L - 1 - k) if p else k) + j) % L for k in range(L)]
 
-    With ``conserve_magnetization`` the sectors are (n_up, character) pairs, one family per n_up the
-    state touches; otherwise full-space sectors (``up_spins`` None).  Which sectors are touched, and
-    their weights, come from :func:`product_sector_weights` before anything is built; each touched
-    sector's component is filled by ``largeq.basis._sector_kernels.product_amplitudes`` (|G| product
-    amplitudes per representative, no magnetization-sector vector).  Sectors with weight <= ``tol``
-    are left out (the note gives the weight left out).  Reflection is dropped when the state has
-    weight at k != 0, pi; spin flip is dropped for a conserved magnetization unless n_up = L/2 only.
-    """
-    from largeq.basis.states import _site_table
 
+def _fixed_counts(g, L: int) -> list[int]:
+    """c[n] = number of basis states with n up spins fixed by g (exact integers, cycle polynomials).
+
+    On a cycle of length c of the site map, a fixed state is constant (f = 0: 0 or c up spins) or
+    alternates (f = 1: needs c even, two choices with c/2 up spins)."""
+    mp = _site_map(g, L)
+    seen = [False] * L
+    poly = [1]
+    for k0 in range(L):
+        if seen[k0]:
+            continue
+        c, k = 0, k0
+        while not seen[k]:
+            seen[k] = True
+            k = mp[k]
+            c += 1
+        if g[2]:
+            if c % 2:
+                return [0] * (L + 1)
+            factor = {c // 2: 2}
+        else:
+            factor = {0: 1, c: 1}
+        nxt = [0] * (len(poly) + c)
+        for a, va in enumerate(poly):
+            if va:
+                for e, ve in factor.items():
+                    nxt[a + e] += va * ve
+        poly = nxt
+    return (poly + [0] * (L + 1))[: L + 1]
+
+
+def sector_dimensions(n_sites: int, keys, *, translation: bool = True, reflection: bool = False,
+                      spin_flip: bool = False) -> list[int]:
+    """Dimensions of the sectors ``keys`` = (n_up or None, m, r, f) without enumerating them:
+    Tr(P_chi P_n) = (1/|G|) sum_g conj(chi(g)) #{n-states fixed by g} (Burnside's lemma weighted by
+    the character; T, R, F permute basis states without signs)."""
+    L = int(n_sites)
+    group = msym.standard_group(L, translation=translation, reflection=reflection, spin_flip=spin_flip)
+    fixed = {g: _fixed_counts(g, L) for g in group.elements}
+    out = []
+    for n, m, r, f in keys:
+        tot = 0j
+        for g in group.elements:
+            cnt = sum(fixed[g]) if n is None else fixed[g][n]
+            if cnt:
+                tot += np.conj(_character((m, r, f), g, L)) * cnt
+        out.append(int(round((tot / len(group.elements)).real)))
+    return out
+
+
+def choose_sectors(spinors, *, conserve_magnetization: bool, translation: bool = True, reflection: bool = False,
+                   spin_flip: bool = False, tol: float = 1e-14) -> dict:
+    """The group and the sectors a product state touches, with weights and dimensions, before any
+    sector is built.  Spin flip is dropped for a conserved magnetization unless the state has
+    n_up = L/2 only (F maps n to L - n); reflection is dropped when the state has weight at
+    k != 0, pi (two-dimensional representations of the dihedral group).  Sectors of weight <= ``tol``
+    are left out.  Returns {group: {translation, reflection, spin_flip}, sectors: [{key, weight,
+    dimension}], left_out, note}."""
     sp_ = _spinors(spinors)
     L = sp_.shape[0]
     if spin_flip and conserve_magnetization:
@@ -495,12 +544,46 @@ def split_product_state(spinors, *, conserve_magnetization: bool, translation: b
         reflection, dropped_r = False, True
         weights = product_sector_weights(sp_, conserve_magnetization=conserve_magnetization,
                                          translation=translation, reflection=False, spin_flip=spin_flip)
-    keep = {k: w for k, w in weights.items() if w > tol}
+    keys = sorted((k for k, w in weights.items() if w > tol),
+                  key=lambda k: (-1 if k[0] is None else k[0], -1 if k[1] is None else k[1], k[2] or 0, k[3] or 0))
+    dims = sector_dimensions(L, keys, translation=translation, reflection=reflection, spin_flip=spin_flip)
+    sectors = [{"key": k, "weight": weights[k], "dimension": d} for k, d in zip(keys, dims) if d > 0]
     left_out = float(sum(w for w in weights.values() if w <= tol))
+    total = sum(s["weight"] for s in sectors)
+    names = " ".join(x for x, on in (("T", translation), ("R", reflection), ("F", spin_flip)) if on)
+    space = "n_up-resolved" if conserve_magnetization else "full-space"
+    note = (f"group: {names}; {space} sectors; the product state touches {len(sectors)} sector(s), weights sum to "
+            f"{total:.15f}" + (f" ({left_out:.1e} left out in sectors of weight <= {tol:g})" if left_out > 0 else ""))
+    if dropped_r:
+        note = ("reflection dropped: the state has weight outside k = 0, pi (two-dimensional representations of "
+                "the dihedral group); " + note)
+    return {"group": {"translation": translation, "reflection": reflection, "spin_flip": spin_flip},
+            "sectors": sectors, "left_out": left_out, "note": note}
+
+
+def split_product_state(spinors, *, conserve_magnetization: bool, translation: bool = True, reflection: bool = False,
+                        spin_flip: bool = False, lookup: str = "block", tol: float = 1e-14
+                        ) -> tuple[list[SectorComponent], str]:
+    """Split a product state prod_j (spinors[j, 0] |down> + spinors[j, 1] |up>) into the sectors it touches.
+
+    With ``conserve_magnetization`` the sectors are (n_up, character) pairs, one family per n_up the
+    state touches; otherwise full-space sectors (``up_spins`` None).  Which sectors are touched, their
+    weights and the group come from :func:`choose_sectors` before anything is built; each touched
+    sector's component is filled by ``largeq.basis._sector_kernels.product_amplitudes`` (|G| product
+    amplitudes per representative, no magnetization-sector vector).
+    """
+    from largeq.basis.states import _site_table
+
+    sp_ = _spinors(spinors)
+    L = sp_.shape[0]
+    choice = choose_sectors(sp_, conserve_magnetization=conserve_magnetization, translation=translation,
+                            reflection=reflection, spin_flip=spin_flip, tol=tol)
+    reflection, spin_flip = choice["group"]["reflection"], choice["group"]["spin_flip"]
+    keep = {s["key"]: s["weight"] for s in choice["sectors"]}
+    left_out = choice["left_out"]
     orbits_by_n: dict = {}
     comps = []
-    for key in sorted(keep, key=lambda k: (-1 if k[0] is None else k[0], k[1] if k[1] is not None else -1,
-                                           k[2] or 0, k[3] or 0)):
+    for key in keep:
         n, m, r, f = key
         if n not in orbits_by_n:
             orbits_by_n[n] = orbit_representatives(GroupSpec(L, n, translation=translation, reflection=reflection,
@@ -520,20 +603,11 @@ def split_product_state(spinors, *, conserve_magnetization: bool, translation: b
         w = float(np.vdot(vec, vec).real)
         if abs(w - keep[key]) > 1e-10:
             raise RuntimeError(f"sector {sec.label}: component weight {w} differs from the predicted {keep[key]} (bug)")
-        if sec.real and np.max(np.abs(vec.imag), initial=0.0) == 0.0:
-            pass
         comps.append(SectorComponent(sec, vec, w))
     total = sum(c.weight for c in comps)
     if abs(total + left_out - 1.0) > 1e-10:
         raise RuntimeError(f"sector weights sum to {total + left_out}, not 1 (bug)")
-    names = " ".join(x for x, on in (("T", translation), ("R", reflection), ("F", spin_flip)) if on)
-    space = "n_up-resolved" if conserve_magnetization else "full-space"
-    note = (f"group: {names}; {space} sectors; the product state touches {len(comps)} sector(s), weights sum to "
-            f"{total:.15f}" + (f" ({left_out:.1e} left out in sectors of weight <= {tol:g})" if left_out > 0 else ""))
-    if dropped_r:
-        note = ("reflection dropped: the state has weight outside k = 0, pi (two-dimensional representations of "
-                "the dihedral group); " + note)
-    return comps, note
+    return comps, choice["note"]
 
 
 # --------------------------------------------------------------------------- general cross-sector observables

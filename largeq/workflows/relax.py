@@ -34,7 +34,8 @@ from largeq.reports.store import (Quantity, atomic_write_text, make_run_folder, 
 from largeq.scenario.spec import Scenario, load_scenario, scenario_to_toml
 from largeq.operators.vectors import vdot
 
-__all__ = ["RelaxOptions", "RelaxRun", "run_relaxation", "resume_relaxation", "choose_block"]
+__all__ = ["RelaxOptions", "RelaxRun", "run_relaxation", "resume_relaxation", "choose_block", "sector_choice",
+           "sector_plan"]
 
 SCENARIO_FILE = "scenario.toml"
 BOUNDS_SEED = 20260101  # fixed seed of the Lanczos start vector: bounds are reproducible
@@ -61,8 +62,8 @@ class RelaxOptions:
         Seed of the random vectors used by the estimators (recorded in the results).
     symmetry : str
         "auto": evolve in momentum (and reflection / spin-flip) sectors when H is translation
-        invariant, the start is a z-basis state and every observable is diagonal; "off": always
-        the magnetization sector (or full space).
+        invariant and the state's sectors are smaller than the basis (``sector_choice``), any product
+        start and any observable; "off": always the magnetization sector (or full space).
     """
 
     checkpoint_seconds: float | None = None
@@ -149,26 +150,73 @@ def _prepare(scenario: Scenario, options: RelaxOptions):
     return problem, times, block, forecast, None
 
 
-def sector_plan(problem: Problem, options: RelaxOptions, available: int, n_times: int) -> dict | None:
-    """Momentum (+ reflection, spin-flip) sectors for this run, or None when they do not apply.
+def sector_choice(problem: Problem, options: RelaxOptions = RelaxOptions()) -> dict:
+    """Whether ``relax`` evolves in momentum (+ reflection, spin-flip) sectors, and in which ones,
+    decided without enumerating any sector (describe and forecast call this to predict the run).
 
-    They apply when H is translation invariant and conserves the magnetization, the initial
-    state is a z-basis product state, every observable is diagonal in the z basis (those are
-    evaluated across sectors exactly) and the method is Chebyshev.  The sector matrices are
-    stored (CSR) when that fits in a third of the memory; otherwise the products stay matrix-free.
+    The sectors apply when the method is Chebyshev and H is translation invariant; any product
+    start (z-basis or tilted) and any Hermitian Pauli-sum observable are handled (observables across
+    sectors by ``largeq.operators.sector_operator.sector_observables``).  With a conserved
+    magnetization the sectors are resolved in n_up as well; otherwise they are sectors of the full
+    2^L space.  The touched sectors and their weights come from
+    ``largeq.operators.sector_operator.product_sector_weights`` (O(|G| L^2)), their dimensions from
+    character sums over fixed points (``sector_dimensions``); the sectors are used when their total
+    dimension is at most half the basis ``relax`` would otherwise use (a state spread over every
+    momentum gains nothing and would pay for the cross-sector pairs).
+
+    Returns a dict: ``use`` (bool), ``reason`` (words), and when translation applies ``group``
+    (flags), ``conserve_magnetization``, ``sectors`` [{key: (n_up or None, m, r, f), weight,
+    dimension}], ``total_dimension``, ``note``.
     """
-    from largeq.operators.sector_operator import split_basis_state
+    from largeq.operators.sector_operator import choose_sectors
 
-    sym, start = problem.symmetries, problem.start
-    if options.symmetry == "off" or problem.scenario.numerics.method != "chebyshev":
+    sym = problem.symmetries
+    if options.symmetry == "off":
+        return {"use": False, "reason": "symmetry sectors switched off (symmetry = off)"}
+    if problem.scenario.numerics.method != "chebyshev":
+        return {"use": False, "reason": "symmetry sectors are used with the Chebyshev method only"}
+    if not sym["translation"]:
+        return {"use": False, "reason": "H is not translation invariant (open chain or site-dependent terms)"}
+    conserve = bool(sym["conserves_magnetization"])
+    choice = choose_sectors(problem.start.spinors, conserve_magnetization=conserve, reflection=sym["reflection"],
+                            spin_flip=sym["spin_flip"])
+    total = int(sum(s["dimension"] for s in choice["sectors"]))
+    plain = int(problem.basis.dim)
+    choice.update(total_dimension=total, plain_dimension=plain, conserve_magnetization=conserve)
+    if total > plain // 2:
+        choice.update(use=False, reason=(f"the initial state spreads over {len(choice['sectors'])} symmetry sectors "
+                                         f"of total dimension {total:,}, not less than half of {plain:,}: "
+                                         f"evolving in {problem.basis.label} instead"))
+        return choice
+    dims = [s["dimension"] for s in choice["sectors"]]
+    shown = " + ".join(f"{d:,}" for d in dims[:12]) + (f" + ... ({len(dims)} sectors)" if len(dims) > 12 else "")
+    choice.update(use=True, reason=(f"H is translation invariant: the initial state splits into {len(dims)} symmetry "
+                                    f"sector(s) of dimensions {shown} = {total:,} (instead of {plain:,}); "
+                                    f"{choice['note']}"))
+    return choice
+
+
+def sector_plan(problem: Problem, options: RelaxOptions, available: int, n_times: int) -> dict | None:
+    """Momentum (+ reflection, spin-flip) sectors for this run, or None when they do not apply
+    (:func:`sector_choice` decides; this enumerates the sectors and splits the state).
+
+    The sector matrices are stored (CSR) when that fits in a third of the memory; otherwise the
+    products stay matrix-free.
+    """
+    from largeq.operators.sector_operator import split_basis_state, split_product_state
+
+    choice = sector_choice(problem, options)
+    if not choice["use"]:
         return None
-    if not (sym["translation"] and sym["conserves_magnetization"] and start.bits is not None):
-        return None
-    if any(not o.pauli.is_diagonal() for o in problem.observables.values()):
-        return None  # off-diagonal observables connect sectors in ways not evaluated here
-    L, n_up = problem.n_sites, start.up_spins
-    comps, note = split_basis_state(start.bits, L, reflection=sym["reflection"],
-                                    spin_flip=sym["spin_flip"] and 2 * n_up == L)
+    start = problem.start
+    g = choice["group"]
+    L = problem.n_sites
+    if start.bits is not None and choice["conserve_magnetization"]:
+        comps, note = split_basis_state(start.bits, L, reflection=g["reflection"], spin_flip=g["spin_flip"])
+    else:
+        comps, note = split_product_state(start.spinors, conserve_magnetization=choice["conserve_magnetization"],
+                                          reflection=g["reflection"], spin_flip=g["spin_flip"])
+    n_up = start.up_spins
     dims = [c.sector.dim for c in comps]
     block = options.block or 8
     n_groups = len(problem.hamiltonian.groups())
@@ -190,10 +238,11 @@ def sector_plan(problem: Problem, options: RelaxOptions, available: int, n_times
                               int(stored_bytes) if store else 0, total,
                               f"{len(dims)} sector(s) {dims}; stored sector matrices: {'yes' if store else 'no'}")
     check_fits(forecast, n_sites=L, up_spins=n_up, available=available)
+    shown = " + ".join(f"{d:,}" for d in dims[:12]) + (f" + ... ({len(dims)} sectors)" if len(dims) > 12 else "")
     reason = (f"H is translation invariant: the initial state splits into {len(comps)} symmetry sector(s) of "
-              f"dimensions {', '.join(f'{d:,}' for d in dims)} (instead of {problem.basis.dim:,}); {note}")
+              f"dimensions {shown} = {sum(dims):,} (instead of {problem.basis.dim:,}); {note}")
     return {"components": comps, "note": note, "block": block, "store": store, "forecast": forecast,
-            "reason": reason}
+            "reason": reason, "choice": choice}
 
 
 def run_relaxation(scenario: Scenario, folder=None, options: RelaxOptions = RelaxOptions()) -> RelaxRun:
@@ -316,7 +365,7 @@ class _SectorRecorder(_Recorder):
 
 def _execute_sectors(problem: Problem, text: str, folder: Path, times, plan, options, *, resume: bool) -> RelaxRun:
     """The relaxation run with the state split over symmetry sectors, each evolved on its own."""
-    from largeq.operators.sector_operator import CrossSectorDiagonal, SymmetricOperator
+    from largeq.operators.sector_operator import SymmetricOperator, sector_observables
 
     scenario = problem.scenario
     fp = fingerprint(text)
@@ -327,7 +376,7 @@ def _execute_sectors(problem: Problem, text: str, folder: Path, times, plan, opt
     ops = [SymmetricOperator(problem.hamiltonian, c.sector) for c in comps]
     if plan["store"]:
         ops = [op.stored() for op in ops]
-    cross = CrossSectorDiagonal([c.sector for c in comps], {n: o.pauli for n, o in problem.observables.items()})
+    cross = sector_observables([c.sector for c in comps], {n: o.pauli for n, o in problem.observables.items()})
     psi_start = [np.ascontiguousarray(c.vector, dtype=np.complex128) for c in comps]
     rec = _SectorRecorder(problem, ops, cross, psi_start, len(times))
     states = [v.copy() for v in psi_start]
@@ -378,7 +427,8 @@ def _execute_sectors(problem: Problem, text: str, folder: Path, times, plan, opt
     wall = elapsed_before + time.perf_counter() - wall0
     stats = SimpleNamespace(max_error_estimate=max(errors, default=0.0), total_error_estimate=float(sum(errors)))
     sector_info = {"note": plan["note"], "reason": plan["reason"], "stored_matrices": plan["store"],
-                   "sectors": [{"label": c.sector.label, "dimension": int(c.sector.dim), "weight": float(c.weight)}
+                   "sectors": [{"label": c.sector.label, "key": list(c.sector.full_key), "dimension": int(c.sector.dim),
+                                "weight": float(c.weight)}
                                for c in comps]}
     summary = _finish(problem, text, folder, times, rec, bounds[0], block, plan["forecast"], stats, matvecs, wall,
                       1.0, options, sectors=sector_info)
@@ -450,7 +500,7 @@ def _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, m
         "conventions": spin_conventions(),
         "versions": package_versions(),
         "machine": run_metadata(),
-        "basis": problem.basis.describe(),
+        "basis": _basis_summary(problem, sectors),
         "basis_reason": problem.basis_reason if sectors is None else sectors["reason"],
         "symmetry_sectors": sectors or {},
         "symmetries": problem.symmetries,
@@ -467,7 +517,7 @@ def _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, m
     summary = {
         "title": scenario.title,
         "sites": problem.n_sites,
-        "basis": problem.basis.describe() | {"reason": problem.basis_reason if sectors is None else sectors["reason"]},
+        "basis": _basis_summary(problem, sectors),
         "symmetry_sectors": sectors,
         "initial_state": problem.start.label,
         "initial_energy": float(rec.energy[0]),
@@ -497,6 +547,19 @@ def _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, m
     write_summary(folder / "summary.json", summary)
     _plots_and_report(problem, folder, times, rec, analyses, summary, eq["rows"])
     return summary
+
+
+def _basis_summary(problem, sectors: dict | None) -> dict:
+    """The basis the run evolved in: the magnetization sector / full space, or the symmetry sectors
+    (kind "symmetry-sector", their total dimension, each sector's label and dimension, and the basis
+    they replace)."""
+    if sectors is None:
+        return problem.basis.describe() | {"reason": problem.basis_reason}
+    dims = [s["dimension"] for s in sectors["sectors"]]
+    return {"kind": "symmetry-sector", "sites": problem.n_sites, "up_spins": problem.basis.up_spins,
+            "dimension": int(sum(dims)), "sector_count": len(dims), "sector_dimensions": dims,
+            "sector_labels": [s["label"] for s in sectors["sectors"]],
+            "replaces": problem.basis.describe(), "reason": sectors["reason"]}
 
 
 def _field_values(problem):
@@ -542,7 +605,8 @@ def _plots_and_report(problem, folder: Path, times, rec, analyses, summary, eq_r
             ("norm drift", html.format_number(summary["norm_drift"]), ""),
         ]),
         html.Section("Run", table=[
-            ("basis", problem.basis.label,
+            ("basis", problem.basis.label if summary["basis"]["kind"] != "symmetry-sector" else
+             f"{summary['basis']['sector_count']} symmetry sector(s), dimension {summary['basis']['dimension']:,}",
              summary["basis"]["reason"]),
             ("initial state", problem.start.label, ""),
             ("method", summary["method"], f"tolerance {summary['tolerance']:g}"),
