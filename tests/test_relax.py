@@ -305,6 +305,12 @@ def test_symmetry_sectors_with_offdiagonal_observables_and_tilted_starts(tmp_pat
     basis = json.loads((split.folder / "summary.json").read_text())["basis"]
     assert basis["kind"] == "symmetry-sector" and basis["dimension"] == sum(basis["sector_dimensions"])
     assert basis["dimension"] < plain.summary["basis"]["dimension"] // 10
+    # the prediction describe / forecast use (no enumeration) is exactly what the run did
+    from largeq.workflows.relax import sector_choice
+
+    choice = sector_choice(build_problem(sc))
+    assert choice["use"] and [c["dimension"] for c in choice["sectors"]] == basis["sector_dimensions"]
+    assert sector_choice(build_problem(sc), RelaxOptions(symmetry="off"))["use"] is False
     if case == "tilted_ising_ring":
         assert basis["sector_count"] == 1 and "all magnetizations" in basis["sector_labels"][0]
         assert "k = 2 pi * 0/12" in basis["sector_labels"][0]
