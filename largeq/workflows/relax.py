@@ -177,6 +177,9 @@ def sector_choice(problem: Problem, options: RelaxOptions = RelaxOptions()) -> d
         return {"use": False, "reason": "symmetry sectors are used with the Chebyshev method only"}
     if not sym["translation"]:
         return {"use": False, "reason": "H is not translation invariant (open chain or site-dependent terms)"}
+    if problem.basis.up_spins is not None and problem.start.up_spins is None:
+        return {"use": False, "reason": (f"the run evolves the projection of the initial state on n_up = "
+                                         f"{problem.basis.up_spins} (sector.up_spins), not the state itself")}
     conserve = bool(sym["conserves_magnetization"])
     choice = choose_sectors(problem.start.spinors, conserve_magnetization=conserve, reflection=sym["reflection"],
                             spin_flip=sym["spin_flip"])
