@@ -487,8 +487,10 @@ def test_offdiagonal_observables_across_sectors_static(kind):
     vals = sector_observables([c.sector for c in comps], obs)([c.vector for c in comps])
     fb = full_basis(L)
     psi, _ = product_state(fb, sp[:, 0], sp[:, 1])
+    stored = sector_observables([c.sector for c in comps], obs, store=True)([c.vector for c in comps])
     for name, A in obs.items():
         assert abs(vals[name] - PauliOperator(A, fb).expectation(psi)) < 1e-12, (name, note)
+        assert abs(stored[name] - vals[name]) < 1e-12, name  # the same blocks stored as CSR
     if kind == "tilt_alternating":  # invariant under T^2 only: k = 0 and k = pi
         assert sorted({c.sector.momentum for c in comps}) == [0, L // 2]
 

@@ -643,12 +643,14 @@ class CrossSectorObservables:
     (``largeq.basis._sector_kernels.cross_pair_expect``), like one product with the Hamiltonian when
     B_ab has about as many x masks.  Pairs with B_ab = 0 (a translation-invariant A between momenta)
     or that no string of B_ab can connect (n_up differing by more than a string flips) are skipped.
-    Memory: the Pauli strings of the B_ab only (no per-orbit tables, no magnetization-sector vector).
+    Memory: the Pauli strings of the B_ab only (no per-orbit tables, no magnetization-sector vector);
+    with ``store`` each B_ab block is kept as CSR instead (about the nonzeros of the part of H with the
+    same x masks), so an evaluation costs one stored product per pair instead of the orbit scans.
     The sectors must share the generators of G; they may differ in n_up (tilted states under a
     magnetization-conserving H).
     """
 
-    def __init__(self, sectors: list[SymmetricSector], observables: dict[str, PauliSum]):
+    def __init__(self, sectors: list[SymmetricSector], observables: dict[str, PauliSum], *, store: bool = False):
         if not sectors:
             raise ValueError("need at least one sector")
         g0 = sectors[0].group
@@ -699,11 +701,38 @@ class CrossSectorObservables:
                     lst.append((a, b, np.array(keys, np.int64), gptr, np.array(gz, np.int64),
                                 np.array(gc, np.complex128)))
             self.pairs[name] = lst
+        self.stored = {}
+        if store:
+            for name, lst in self.pairs.items():
+                for a, b, gx, gptr, gz, gc in lst:
+                    self.stored[(name, a, b)] = self._block(a, b, gx, gptr, gz, gc)
+
+    def _block(self, a, b, gx, gptr, gz, gc) -> sp.csr_matrix:
+        """The block of B_ab (rows: sector a, columns: sector b) as CSR, real when its entries are."""
+        sa, sb = self.sectors[a], self.sectors[b]
+        cap = max(1, sa.dim * gx.size)
+        rows = np.empty(cap, np.int64); cols = np.empty(cap, np.int64); vals = np.empty(cap, np.complex128)
+        L, full, t, r, f = sa.group_args()
+        e = sk.cross_pair_coo(L, full, t, r, f, sa.reps, self._nrm[a], *self._col[b], gx, gptr, gz, gc,
+                              rows, cols, vals)
+        v = vals[:e]
+        if e and np.max(np.abs(v.imag)) == 0.0:
+            v = v.real.copy()
+        m = sp.coo_matrix((v, (rows[:e], cols[:e])), shape=(sa.dim, sb.dim)).tocsr()
+        del rows, cols, vals
+        m.sum_duplicates()
+        if m.nnz < 2**31 - 1:
+            m.indices = m.indices.astype(np.int32)
+        return m
 
     def table_bytes(self) -> int:
-        return int(sum(v.nbytes for v in self._nrm) + 24 * self.n_strings)
+        st = sum(m.data.nbytes + m.indices.nbytes + m.indptr.nbytes for m in self.stored.values())
+        return int(sum(v.nbytes for v in self._nrm) + 24 * self.n_strings + st)
 
-    def pair_value(self, a: int, b: int, gx, gptr, gz, gc, vecs) -> complex:
+    def pair_value(self, a: int, b: int, gx, gptr, gz, gc, vecs, name=None) -> complex:
+        m = self.stored.get((name, a, b))
+        if m is not None:
+            return complex(vdot(vecs[a], m @ vecs[b]))
         sa = self.sectors[a]
         partial = np.zeros(min(256, max(1, sa.dim)), np.complex128)
         L, full, t, r, f = sa.group_args()
@@ -720,7 +749,7 @@ class CrossSectorObservables:
         for name in self.names:
             tot = 0.0
             for a, b, gx, gptr, gz, gc in self.pairs[name]:
-                v = self.pair_value(a, b, gx, gptr, gz, gc, vecs)
+                v = self.pair_value(a, b, gx, gptr, gz, gc, vecs, name)
                 tot += v.real if a == b else 2.0 * v.real
             out[name] = float(tot)
         return out
@@ -743,19 +772,20 @@ class _CombinedObservables:
         return {n: out[n] for n in self.names}
 
 
-def sector_observables(sectors: list[SymmetricSector], observables: dict[str, PauliSum], *, tables: bool = False):
+def sector_observables(sectors: list[SymmetricSector], observables: dict[str, PauliSum], *, tables: bool = False,
+                       store: bool = False):
     """The evaluator of <psi|A|psi> across sectors for every observable.
 
     ``tables`` True sends diagonal observables to :class:`CrossSectorDiagonal` (per-orbit tables:
     fastest per time, orbits x observables x n(n+1)/2 complex numbers of memory) when all sectors
-    share one group; everything else (and everything by default) goes to the matrix-free
-    :class:`CrossSectorObservables`.
+    share one group; everything else (and everything by default) goes to
+    :class:`CrossSectorObservables` (matrix-free, or its blocks stored as CSR with ``store``).
     """
     same = all(s.group == sectors[0].group for s in sectors)
     diag = {n: a for n, a in observables.items() if a.is_diagonal()} if (tables and same) else {}
     rest = {n: a for n, a in observables.items() if n not in diag}
     parts = [CrossSectorDiagonal(sectors, diag) if diag else None,
-             CrossSectorObservables(sectors, rest) if rest else None]
+             CrossSectorObservables(sectors, rest, store=store) if rest else None]
     return _CombinedObservables(parts, list(observables))
 
 

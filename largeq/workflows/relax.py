@@ -235,17 +235,28 @@ def sector_plan(problem: Problem, options: RelaxOptions, available: int, n_times
     # sectors are assembled one after the other, before the evolution allocates its vectors
     stored_peak = max(stored_bytes * (1 - largest / sum(dims)) + build_bytes, stored_bytes + vectors_bytes)
     store = stored_peak <= 0.8 * available
+    # observables across sectors stored as CSR blocks (one per sector pair, rows of the first sector): about
+    # L/2 + 1 entries per row for an off-diagonal local term summed over its translates, one for diagonal ones
+    n_sec = len(dims)
+    rows = (n_sec + 1) / 2 * sum(dims)
+    obs_bytes = sum(rows * ((L / 2 + 1) if not o.pauli.is_diagonal() else 1) * (12 if real else 20)
+                    for o in problem.observables.values())
+    store_obs = store and stored_peak + obs_bytes <= 0.8 * available
+    if store_obs:
+        stored_peak += obs_bytes
+        stored_bytes += obs_bytes
     total = int((stored_peak if store else vectors_bytes) + 400 * 2**20)
     forecast = evolution_forecast(max(dims), L, method="chebyshev", block=block)
     forecast = type(forecast)("chebyshev (sectors)", int(sum(dims)), (4 + 2 * block) * len(dims), max(dims) * 16,
                               int(stored_bytes) if store else 0, total,
-                              f"{len(dims)} sector(s) {dims}; stored sector matrices: {'yes' if store else 'no'}")
+                              f"{len(dims)} sector(s) {dims}; stored sector matrices: {'yes' if store else 'no'}; "
+                              f"stored observable blocks: {'yes' if store_obs else 'no'}")
     check_fits(forecast, n_sites=L, up_spins=n_up, available=available)
     shown = " + ".join(f"{d:,}" for d in dims[:12]) + (f" + ... ({len(dims)} sectors)" if len(dims) > 12 else "")
     reason = (f"H is translation invariant: the initial state splits into {len(comps)} symmetry sector(s) of "
               f"dimensions {shown} = {sum(dims):,} (instead of {problem.basis.dim:,}); {note}")
     return {"components": comps, "note": note, "block": block, "store": store, "forecast": forecast,
-            "reason": reason, "choice": choice}
+            "reason": reason, "choice": choice, "store_observables": store_obs}
 
 
 def run_relaxation(scenario: Scenario, folder=None, options: RelaxOptions = RelaxOptions()) -> RelaxRun:
@@ -379,7 +390,8 @@ def _execute_sectors(problem: Problem, text: str, folder: Path, times, plan, opt
     ops = [SymmetricOperator(problem.hamiltonian, c.sector) for c in comps]
     if plan["store"]:
         ops = [op.stored() for op in ops]
-    cross = sector_observables([c.sector for c in comps], {n: o.pauli for n, o in problem.observables.items()})
+    cross = sector_observables([c.sector for c in comps], {n: o.pauli for n, o in problem.observables.items()},
+                               store=plan.get("store_observables", False))
     psi_start = [np.ascontiguousarray(c.vector, dtype=np.complex128) for c in comps]
     rec = _SectorRecorder(problem, ops, cross, psi_start, len(times))
     states = [v.copy() for v in psi_start]
@@ -430,6 +442,7 @@ def _execute_sectors(problem: Problem, text: str, folder: Path, times, plan, opt
     wall = elapsed_before + time.perf_counter() - wall0
     stats = SimpleNamespace(max_error_estimate=max(errors, default=0.0), total_error_estimate=float(sum(errors)))
     sector_info = {"note": plan["note"], "reason": plan["reason"], "stored_matrices": plan["store"],
+                   "stored_observables": plan.get("store_observables", False),
                    "sectors": [{"label": c.sector.label, "key": list(c.sector.full_key), "dimension": int(c.sector.dim),
                                 "weight": float(c.weight)}
                                for c in comps]}
