@@ -19,7 +19,7 @@ from dataclasses import dataclass, field
 from typing import Any, Sequence
 
 __all__ = ["Cell", "HeadlineLine", "EXACT_ACCURACY", "fmt", "fmt_error", "relax_headline",
-           "hamiltonian_terms", "headline_text", "lookup"]
+           "hamiltonian_terms", "headline_text", "lookup", "basis_text"]
 
 #: accuracy stated for numbers that come out of dense linear algebra (diagonal ensemble, exact
 #: thermal values): anything smaller in magnitude is numerically zero and prints as 0
@@ -286,3 +286,17 @@ def headline_text(lines: Sequence[HeadlineLine], width: int = 18) -> list[str]:
     """The headline as console lines."""
     return [f"  {ln.label:{width}s} {ln.text()}" for ln in lines]
 
+
+def basis_text(basis: dict) -> str:
+    """The basis a run evolved in, in words: "magnetization basis, dimension 12,870", or for a run in
+    symmetry sectors (``kind`` "symmetry-sector") "2 symmetry sector(s) of dimensions 257 + 230 = 487
+    (instead of magnetization dimension 12,870)"."""
+    if basis.get("kind") != "symmetry-sector":
+        return f"{basis.get('kind', '')} basis, dimension {basis.get('dimension', 0):,}"
+    dims = basis["sector_dimensions"]
+    shown = " + ".join(f"{d:,}" for d in dims[:8]) + (" + ..." if basis["sector_count"] > 8 else "")
+    text = f"{basis['sector_count']} symmetry sector(s) of dimensions {shown} = {basis['dimension']:,}"
+    plain = basis.get("replaces") or {}
+    if plain:
+        text += f" (instead of {plain.get('kind', '')} dimension {plain.get('dimension', 0):,})"
+    return text
