@@ -574,7 +574,10 @@ def plan_run(scenario, *, symmetry: str = "auto", block: int | None = None, avai
                             int(mem["stored_matrices"]) + int(mem["stored_observables"]) + tables, int(total),
                             f"{len(dims)} sector(s) {dims}; stored sector matrices: {'yes' if store else 'no'}; "
                             f"stored observable blocks: {'yes' if store_obs else 'no'}")
+        # every sector runs its own bounds and expansions: the products add up over the sectors, the time
+        # is that of one run on the summed dimension
         products, seconds = _time_estimate(scenario, H, int(sum(dims)), blk)
+        products *= len(dims)
         group = dict(choice["group"], conserve_magnetization=choice["conserve_magnetization"])
         return RunPlan("sectors", choice["reason"], "", L, up, D, label, basis_reason, int(sum(dims)), tuple(comps),
                        note, blk, store, mem, fc, avail, products, seconds, store_obs, group)
