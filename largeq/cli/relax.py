@@ -6,7 +6,7 @@ from largeq.cli.common import UsageError, add_progress_arguments, add_scenario_a
 from largeq.workflows.disorder import run_disorder_relaxation
 from largeq.workflows.relax import RelaxOptions, resume_relaxation, run_relaxation
 from largeq.constants import ESTIMATOR_SEED
-from largeq.reports.headline import basis_text, fmt, fmt_error, headline_text, relax_headline
+from largeq.reports.headline import ENERGY_ACCURACY, basis_text, fmt, fmt_error, headline_text, relax_headline
 from largeq.reports.phases import process_start_time
 
 
@@ -80,6 +80,6 @@ def _print_relax_summary(result) -> None:
     s = result.summary
     print(f"{s['title']}")
     print(f"  L = {s['sites']}, {basis_text(s['basis'])}; "
-          f"{s['method']} (tolerance {s['tolerance']:g}); initial energy {fmt(s['initial_energy'], digits=6)}")
+          f"{s['method']} (tolerance {s['tolerance']:g}); initial energy {fmt(s['initial_energy'], ENERGY_ACCURACY, digits=6)}")
     print("\n".join(headline_text(relax_headline(s))))
     print(f"  results: {result.folder}/ (results.h5, summary.json, report.html)")

@@ -18,12 +18,15 @@ import math
 from dataclasses import dataclass, field
 from typing import Any, Sequence
 
-__all__ = ["Cell", "HeadlineLine", "EXACT_ACCURACY", "fmt", "fmt_error", "relax_headline",
+__all__ = ["Cell", "HeadlineLine", "EXACT_ACCURACY", "ENERGY_ACCURACY", "fmt", "fmt_error", "relax_headline",
            "hamiltonian_terms", "headline_text", "lookup", "basis_text"]
 
 #: accuracy stated for numbers that come out of dense linear algebra (diagonal ensemble, exact
 #: thermal values): anything smaller in magnitude is numerically zero and prints as 0
 EXACT_ACCURACY = 1e-9
+#: accuracy stated for <psi|H|psi> of the initial state (a sum of O(dimension) products in double precision:
+#: roundoff ~1e-16 ||H||; common practice): smaller values print as 0
+ENERGY_ACCURACY = 1e-12
 
 
 def _finite(x: Any) -> bool:
