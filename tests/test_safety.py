@@ -157,7 +157,8 @@ def test_resume_restores_the_options_of_the_run(tmp_path):
     assert r.returncode == 0, r.stderr
     a = json.loads((killed / "summary.json").read_text())
     b = json.loads((clean / "summary.json").read_text())
-    assert a["options"] == b["options"] == {"equilibration": "estimate", "seed": 7, "symmetry": "auto", "block": 2}
+    assert a["options"] == b["options"] == {"equilibration": "estimate", "seed": 7, "symmetry": "auto", "block": 2,
+                                                 "window_start": None}
     assert a["equilibration"]["method"] == b["equilibration"]["method"] == "KPM estimate"
     assert abs(a["equilibration"]["d_eff"] - b["equilibration"]["d_eff"]) <= 1e-12 * abs(b["equilibration"]["d_eff"])
     for name in a["observables"]:

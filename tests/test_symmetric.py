@@ -342,3 +342,220 @@ def test_stored_matrix_expectation_matches_matrix_free():
     ref = np.vdot(x, op.to_csr() @ x).real
     assert abs(op.stored().expectation(x) - ref) < 1e-10 * abs(ref)
     assert abs(op.expectation(x) - ref) < 1e-10 * abs(ref)
+
+
+# ----------------------------------------------------------------------------- full-space sectors, tilted starts,
+# ----------------------------------------------------------------------------- off-diagonal observables across sectors
+def mixed_ising(L, J=1.0, g=-1.05, h=0.5):
+    """H = sum_j J Z_j Z_{j+1} + g X_j + h Z_j on a ring (Pauli units), built independently here."""
+    out = None
+    for j in range(L):
+        for p in (pauli_string(L, {j: "Z", (j + 1) % L: "Z"}, J), pauli_string(L, {j: "X"}, g),
+                  pauli_string(L, {j: "Z"}, h)):
+            if p is not None and abs(complex(p.coeff[0])) > 0:
+                out = p if out is None else out + p
+    return out
+
+
+def tilted_spinors(theta, phi):
+    """cos(theta/2)|up> + e^{i phi} sin(theta/2)|down> per site; columns (down, up) as in largeq."""
+    theta, phi = np.asarray(theta, float), np.asarray(phi, float)
+    return np.stack([np.exp(1j * phi) * np.sin(theta / 2), np.cos(theta / 2) + 0j], axis=1)
+
+
+def _bond(L, i, j):
+    return pauli_string(L, {i: "X", j: "X"}) + pauli_string(L, {i: "Y", j: "Y"}) + pauli_string(L, {i: "Z", j: "Z"})
+
+
+def _offdiag_observables(L):
+    return {
+        "bond01": _bond(L, 0, 1),
+        "xxyy_02": pauli_string(L, {0: "X", 2: "X"}) + pauli_string(L, {0: "Y", 2: "Y"}),
+        "x_sum": sum((pauli_string(L, {j: "X"}) for j in range(1, L)), pauli_string(L, {0: "X"})),
+        "y_sum": sum((pauli_string(L, {j: "Y"}) for j in range(1, L)), pauli_string(L, {0: "Y"})),
+        "x3": pauli_string(L, {3: "X"}),
+        "xy_14": pauli_string(L, {1: "X", 4: "Y"}) + pauli_string(L, {1: "Y", 4: "X"}),
+        "z0": pauli_string(L, {0: "Z"}),
+        "stag": staggered(L),
+    }
+
+
+def _plain_curves(H, basis, psi, times, obs, tol):
+    ops = {k: PauliOperator(v, basis) for k, v in obs.items()}
+    out = {k: np.zeros(len(times)) for k in obs}
+
+    def cb(i, t, v):
+        for k, o in ops.items():
+            out[k][i] = o.expectation(v)
+    evolve(PauliOperator(H, basis), psi, times, on_output=cb, tol=tol)
+    return out
+
+
+@pytest.mark.parametrize("L,t,r,f", [(8, True, True, True), (9, True, True, False), (10, True, False, True),
+                                      (8, False, True, True)])
+def test_sector_dimensions_from_characters(L, t, r, f):
+    """Character-weighted Burnside counts equal the enumerated sector dimensions, at every n_up and for
+    full-space sectors (n_up None), and the full-space sectors partition 2^L."""
+    from largeq.operators.sector_operator import _characters, sector_dimensions
+
+    keys = [(n, *ch) for n in list(range(L + 1)) + [None] for ch in _characters(L, t, r, f)
+            if not (f and n is not None and 2 * n != L)]
+    dims = sector_dimensions(L, keys, translation=t, reflection=r, spin_flip=f)
+    for key, d in zip(keys, dims):
+        n, m, rr, ff = key
+        assert symmetric_sector(L, n, momentum=m, reflection=rr, flip=ff).dim == d, key
+    if not r or all((2 * m) % L == 0 for m in range(L)):
+        assert sum(d for k, d in zip(keys, dims) if k[0] is None) == 2 ** L
+
+
+@pytest.mark.parametrize("L,r,f", [(8, True, False), (9, True, False), (8, True, True)])
+def test_full_space_sector_spectra(L, r, f):
+    """Union of full-space sector spectra = spectrum of H on 2^L states (numpy eigvalsh), to 1e-10:
+    mixed-field Ising ring (no F) and the transverse-field ring (h = 0: F = prod X is a symmetry)."""
+    from largeq.basis.spaces import full_basis
+
+    H = mixed_ising(L, h=0.0 if f else 0.5)
+    ref = np.linalg.eigvalsh(PauliOperator(H, full_basis(L)).to_dense())
+    ev = []
+    for lab in sector_labels(L, L // 2, reflection=r, spin_flip=f):
+        sec = symmetric_sector(L, None, momentum=lab["momentum"], reflection=lab["reflection"], flip=lab["flip"])
+        if sec.dim:
+            ev.append(np.linalg.eigvalsh(SymmetricOperator(H, sec).to_dense()))
+    ev = np.sort(np.concatenate(ev))
+    assert ev.size == 2 ** L
+    np.testing.assert_allclose(ev, ref, atol=1e-10)
+
+
+@pytest.mark.parametrize("conserve", [False, True])
+def test_tilted_split_norm_and_energy(conserve):
+    """A uniform tilt lies in k = 0, R = + (per n_up when the magnetization is conserved): the weights
+    sum to 1 and sum_s <psi_s|H|psi_s> equals the product-state energy to 1e-12.
+
+    Analytic value (derived): a spin cos(theta/2)|up> + e^{i phi} sin(theta/2)|down> has Bloch vector
+    (sin theta cos phi, sin theta sin phi, cos theta) (M. A. Nielsen and I. L. Chuang, Quantum
+    Computation and Quantum Information, Cambridge (2000), sec. 1.2), and a product state factorises
+    <Z_j Z_j+1> = cos^2 theta, so for the mixed-field Ising ring <H> = L (J cos^2 theta + g sin theta
+    cos phi + h cos theta) in Pauli units; for the J1-J2 XXZ ring in S = sigma/2 units
+    <H> = sum_r J_r L (sin^2 theta + D_r cos^2 theta) / 4 (neighbouring Bloch vectors equal)."""
+    from largeq.operators.sector_operator import split_product_state
+
+    L, theta, phi = 12, 0.83, 0.41
+    sp = tilted_spinors(np.full(L, theta), np.full(L, phi))
+    if conserve:
+        H = ring(L, 1.0, 0.3, 1.0, 0.7)
+        exact = sum(J * L * (np.sin(theta) ** 2 + D * np.cos(theta) ** 2) / 4 for J, D in ((1.0, 1.0), (0.3, 0.7)))
+    else:
+        J, g, h = 1.0, -1.05, 0.5
+        H = mixed_ising(L, J, g, h)
+        exact = L * (J * np.cos(theta) ** 2 + g * np.sin(theta) * np.cos(phi) + h * np.cos(theta))
+    comps, note = split_product_state(sp, conserve_magnetization=conserve, reflection=True, spin_flip=False)
+    assert all(c.sector.momentum == 0 and c.sector.reflection_parity == 1 for c in comps)
+    assert (len(comps) == L + 1) if conserve else (len(comps) == 1 and comps[0].sector.up_spins is None)
+    assert abs(sum(np.vdot(c.vector, c.vector).real for c in comps) - 1.0) < 1e-12
+    energy = sum(SymmetricOperator(H, c.sector).expectation(c.vector) for c in comps)
+    assert abs(energy - exact) < 1e-12
+    # k = 0, R = + only: about 2^L / (2L) states instead of 2^L (224 at L = 12: the orbits with a
+    # nontrivial stabiliser make it larger than 4096 / 24); more than L-fold smaller in any case
+    total = sum(c.sector.dim for c in comps)
+    assert 2 ** L / total > L
+
+
+@pytest.mark.parametrize("kind", ["neel", "domain", "tilt_conserve", "tilt_full", "tilt_alternating"])
+def test_offdiagonal_observables_across_sectors_static(kind):
+    """<psi|A|psi> from the sector components (every pair of sectors) equals the full-space value
+    (PauliOperator on 2^L states, independent code) to 1e-12 for bonds, XX+YY, sigma^x / sigma^y sums,
+    a site-resolved sigma^x and mixed XY strings."""
+    from largeq.basis.spaces import full_basis
+    from largeq.basis.states import product_state
+    from largeq.operators.sector_operator import sector_observables, split_start
+
+    L = 10
+    rng = np.random.default_rng(7)
+    if kind == "neel":
+        H, start = ring(L), neel(L)
+        sp = np.zeros((L, 2), complex); sp[np.arange(L), [(start >> j) & 1 for j in range(L)]] = 1
+    elif kind == "domain":
+        H, start = ring(L), (1 << (L // 2)) - 1
+        sp = np.zeros((L, 2), complex); sp[np.arange(L), [(start >> j) & 1 for j in range(L)]] = 1
+    elif kind == "tilt_conserve":
+        H = ring(L); sp = tilted_spinors(rng.uniform(0, np.pi, L), rng.uniform(0, 2 * np.pi, L)); start = sp
+    elif kind == "tilt_full":
+        H = mixed_ising(L); sp = tilted_spinors(rng.uniform(0, np.pi, L), rng.uniform(0, 2 * np.pi, L)); start = sp
+    else:
+        H = mixed_ising(L); sp = tilted_spinors(np.tile([0.4, 2.1], L // 2), np.tile([0.0, 1.3], L // 2)); start = sp
+    comps, note = split_start(H, start, reflection=True, spin_flip=True)
+    obs = _offdiag_observables(L)
+    vals = sector_observables([c.sector for c in comps], obs)([c.vector for c in comps])
+    fb = full_basis(L)
+    psi, _ = product_state(fb, sp[:, 0], sp[:, 1])
+    stored = sector_observables([c.sector for c in comps], obs, store=True)([c.vector for c in comps])
+    for name, A in obs.items():
+        assert abs(vals[name] - PauliOperator(A, fb).expectation(psi)) < 1e-12, (name, note)
+        assert abs(stored[name] - vals[name]) < 1e-12, name  # the same blocks stored as CSR
+    if kind == "tilt_alternating":  # invariant under T^2 only: k = 0 and k = pi
+        assert sorted({c.sector.momentum for c in comps}) == [0, L // 2]
+
+
+@pytest.mark.parametrize("L", [12, 14])
+def test_offdiagonal_relaxation_neel_matches_magnetization_sector(L):
+    """Bond energy, XX+YY at distance 2, sigma^z_0 and the staggered magnetization from the Neel state of
+    the J1-J2 ring: sectors (all cross pairs) vs. the magnetization-sector evolution, to 1e-10."""
+    H = ring(L)
+    times = np.linspace(0.0, 3.0, 7)
+    obs = {k: v for k, v in _offdiag_observables(L).items() if k in ("bond01", "xxyy_02", "z0", "stag", "xy_14")}
+    res = evolve_split(H, neel(L), times, obs, reflection=True, spin_flip=True, tol=1e-13)
+    b = magnetization_basis(L, L // 2)
+    ref = _plain_curves(H, b, basis_state(b, neel(L)), times, obs, 1e-13)
+    for k in obs:
+        np.testing.assert_allclose(res["curves"][k], ref[k], atol=1e-10, rtol=0)
+    assert abs(res["curves"]["bond01"][0] + 1.0) < 1e-12  # <Z0 Z1> = -1, XX + YY vanish on a basis state
+
+
+def _tilted_case(L, model):
+    from largeq.basis.spaces import full_basis
+    from largeq.basis.states import product_state
+
+    if model == "ising":
+        H = mixed_ising(L)
+        sp = tilted_spinors(np.full(L, np.pi / 3), np.zeros(L))
+    else:  # XXZ ring, two-site tilt pattern (translation by two sites only)
+        H = ring(L, 1.0, 0.3, 1.0, 0.7)
+        sp = tilted_spinors(np.tile([0.7, 2.0], L // 2), np.tile([0.0, 0.9], L // 2))
+    fb = full_basis(L)
+    psi, _ = product_state(fb, sp[:, 0], sp[:, 1])
+    return H, sp, fb, psi
+
+
+@pytest.mark.parametrize("L,model", [(12, "ising"), (14, "ising"), (12, "xxz")])
+def test_tilted_relaxation_matches_full_space(L, model):
+    """Tilted starts evolved in sectors (full-space k = 0 sector for the mixed-field Ising ring; n_up-resolved
+    k = 0, pi sectors for the XXZ ring) equal the full-space evolution, every observable, to 1e-10."""
+    H, sp, fb, psi = _tilted_case(L, model)
+    times = np.linspace(0.0, 3.0, 7)
+    obs = _offdiag_observables(L)
+    res = evolve_split(H, sp, times, obs, reflection=True, spin_flip=model == "xxz", tol=1e-13)
+    ref = _plain_curves(H, fb, psi, times, obs, 1e-13)
+    for k in obs:
+        np.testing.assert_allclose(res["curves"][k], ref[k], atol=1e-10, rtol=0)
+    if model == "ising":
+        assert len(res["sectors"]) == 1 and 2 ** L / res["sectors"][0]["dimension"] > L
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("L,model", [(16, "neel"), (18, "ising"), (16, "xxz")])
+def test_offdiagonal_and_tilted_relaxation_large(L, model):
+    """As above at L = 16-18 (slow)."""
+    times = np.linspace(0.0, 2.0, 3)
+    if model == "neel":
+        H = ring(L)
+        obs = {k: v for k, v in _offdiag_observables(L).items() if k in ("bond01", "xxyy_02", "z0")}
+        res = evolve_split(H, neel(L), times, obs, reflection=True, spin_flip=True, tol=1e-13)
+        b = magnetization_basis(L, L // 2)
+        ref = _plain_curves(H, b, basis_state(b, neel(L)), times, obs, 1e-13)
+    else:
+        H, sp, fb, psi = _tilted_case(L, model)
+        obs = {k: v for k, v in _offdiag_observables(L).items() if k in ("bond01", "x_sum", "y_sum", "z0")}
+        res = evolve_split(H, sp, times, obs, reflection=True, spin_flip=model == "xxz", tol=1e-13)
+        ref = _plain_curves(H, fb, psi, times, obs, 1e-13)
+    for k in obs:
+        np.testing.assert_allclose(res["curves"][k], ref[k], atol=1e-10, rtol=0)

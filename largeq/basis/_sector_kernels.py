@@ -6,6 +6,8 @@ Group elements are written g = T^j F^f R^p (apply R first, then F, then T^j) wit
 * R: reflection, bit i -> bit L - 1 - i;
 * F: spin flip, b -> b XOR (2^L - 1).
 
+``n_up`` = -1 marks a sector of the full space (no magnetization test on the strings).
+
 A sector is a one-dimensional character chi(T^j F^f R^p) = e^{i k j} sF^f sR^p, passed to the
 kernels as a phase table ``tphase[j] = e^{i k j}`` and the two parities ``sr``, ``sf``.
 
@@ -35,7 +37,7 @@ _CHUNKS = 256
 __all__ = [
     "reverse_bits", "rotl", "min_rotation", "min_rotation_naive", "find_rep", "count_reps", "fill_reps",
     "stabilisers", "lookup", "diag_values", "sym_fused", "sym_expect", "sym_coo", "project_states",
-    "expand_states", "cross_tables", "cross_eval",
+    "expand_states", "cross_tables", "cross_eval", "cross_pair_expect", "product_amplitudes",
 ]
 
 
@@ -222,7 +224,7 @@ def _row(i, L, full, n_up, use_t, use_r, use_f, tphase, sr, sf, reps, nrm, mode,
     inv = 1.0 / nrm[i]
     for g in range(gx.shape[0]):
         b = r ^ gx[g]
-        if popcount(b) != n_up:
+        if n_up >= 0 and popcount(b) != n_up:
             continue
         c = gc[0] * 0
         for q in range(gptr[g], gptr[g + 1]):
@@ -283,7 +285,7 @@ def sym_coo(L, full, n_up, use_t, use_r, use_f, tphase, sr, sf, reps, nrm, mode,
         e += 1
         for g in range(gx.shape[0]):
             b = r ^ gx[g]
-            if popcount(b) != n_up:
+            if n_up >= 0 and popcount(b) != n_up:
                 continue
             c = gc[0] * 0
             for q in range(gptr[g], gptr[g + 1]):
@@ -430,3 +432,108 @@ def csr_fused(indptr, indices, data, x, y, alpha, beta, gamma):
             y[i] = alpha * acc + beta * x[i]
         else:
             y[i] = alpha * acc + beta * x[i] + gamma * y[i]
+
+
+# --------------------------------------------------------------------------- general observables across sectors
+@njit(parallel=True, cache=True)
+def cross_pair_expect(L, full, use_t, use_r, use_f, reps_a, nrm_a, x_a, n_up_b, tphase_b, sr_b, sf_b, reps_b, nrm_b,
+                      mode, blk_b, n_lo_b, rank_tab_b, boff_b, lo_rank_b, x_b, gx, gptr, gz, gc, partial):
+    """partial[c] <- chunk c of sum_i conj(x_a[i]) (B x_b)_i for a Pauli sum B mapping sector b into sector a.
+
+    Row i of sector a: (B x_b)_i = <r_i|B|psi_b> / sqrt(|S_r_i| / |G|) (valid when P_a B = B P_b), and
+    <s|psi_b> = chi_b(g') sqrt(|S_r| / |G|) x_b[idx_b(r)] with g' s = r, so the row is the gather of
+    ``_row`` with the row taken from sector a and the column looked up in sector b.  All x masks,
+    the diagonal (x = 0) included, go through the same loop.  Complex128 arguments throughout.
+    """
+    n = reps_a.shape[0]
+    nc = partial.shape[0]
+    for c in prange(nc):
+        s = 0j
+        for i in range(c * n // nc, (c + 1) * n // nc):
+            xa = x_a[i]
+            if xa == 0:
+                continue
+            r = reps_a[i]
+            acc = 0j
+            for g in range(gx.shape[0]):
+                b = r ^ gx[g]
+                if n_up_b >= 0 and popcount(b) != n_up_b:
+                    continue
+                cf = 0j
+                for q in range(gptr[g], gptr[g + 1]):
+                    cf += gc[q] * zsign(gz[q], b)
+                if cf == 0:
+                    continue
+                rb, j, f, p = find_rep(b, L, full, use_t, use_r, use_f)
+                idx = lookup(rb, mode, reps_b, blk_b, n_lo_b, rank_tab_b, boff_b, lo_rank_b)
+                if idx < 0:
+                    continue
+                ch = tphase_b[j]
+                if p == 1:
+                    ch = ch * sr_b
+                if f == 1:
+                    ch = ch * sf_b
+                acc += (cf * ch) * nrm_b[idx] * x_b[idx]
+            s += np.conj(xa) * acc / nrm_a[i]
+        partial[c] = s
+
+
+@njit(parallel=True, cache=True)
+def product_amplitudes(reps, nrm, L, full, use_t, use_r, use_f, g_size, tphase, sr, sf, n_lo, amp_lo, amp_hi, out):
+    """out[i] <- <r~_i|psi> for a product state psi(s) = amp_hi[s >> n_lo] amp_lo[s & (2^n_lo - 1)].
+
+    <r~|psi> = <r|P_chi|psi> / sqrt(|S_r| / |G|) = (1 / sqrt(|G| |S_r|)) sum_g chi(g) psi(g r)
+    (sum over g = T^j F^f R^p; conj(chi(g^-1)) = chi(g) for a one-dimensional unitary character).
+    """
+    n_t = L if use_t else 1
+    mask = (np.int64(1) << n_lo) - 1
+    scale = 1.0 / np.sqrt(g_size)
+    for i in prange(reps.shape[0]):
+        r = reps[i]
+        acc = 0j
+        for p in range(2 if use_r else 1):
+            s1 = reverse_bits(r, L) if p == 1 else r
+            for f in range(2 if use_f else 1):
+                s2 = ((~s1) & full) if f == 1 else s1
+                for j in range(n_t):
+                    s = rotl(s2, j, L, full) if j > 0 else s2
+                    ch = tphase[j]
+                    if p == 1:
+                        ch = ch * sr
+                    if f == 1:
+                        ch = ch * sf
+                    acc += ch * amp_hi[s >> n_lo] * amp_lo[s & mask]
+        out[i] = acc * scale / nrm[i]
+
+
+@njit(cache=True)
+def cross_pair_coo(L, full, use_t, use_r, use_f, reps_a, nrm_a, n_up_b, tphase_b, sr_b, sf_b, reps_b, nrm_b, mode,
+                   blk_b, n_lo_b, rank_tab_b, boff_b, lo_rank_b, gx, gptr, gz, gc, rows, cols, vals):
+    """Entries (i, idx, value) of the block of B from sector b into sector a (same gather as
+    ``cross_pair_expect``); returns how many were written."""
+    e = 0
+    for i in range(reps_a.shape[0]):
+        r = reps_a[i]
+        for g in range(gx.shape[0]):
+            b = r ^ gx[g]
+            if n_up_b >= 0 and popcount(b) != n_up_b:
+                continue
+            cf = 0j
+            for q in range(gptr[g], gptr[g + 1]):
+                cf += gc[q] * zsign(gz[q], b)
+            if cf == 0:
+                continue
+            rb, j, f, p = find_rep(b, L, full, use_t, use_r, use_f)
+            idx = lookup(rb, mode, reps_b, blk_b, n_lo_b, rank_tab_b, boff_b, lo_rank_b)
+            if idx < 0:
+                continue
+            ch = tphase_b[j]
+            if p == 1:
+                ch = ch * sr_b
+            if f == 1:
+                ch = ch * sf_b
+            rows[e] = i
+            cols[e] = idx
+            vals[e] = (cf * ch) * nrm_b[idx] / nrm_a[i]
+            e += 1
+    return e

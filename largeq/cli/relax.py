@@ -6,7 +6,7 @@ from largeq.cli.common import UsageError, add_progress_arguments, add_scenario_a
 from largeq.workflows.disorder import run_disorder_relaxation
 from largeq.workflows.relax import RelaxOptions, resume_relaxation, run_relaxation
 from largeq.constants import ESTIMATOR_SEED
-from largeq.reports.headline import fmt, fmt_error, headline_text, relax_headline
+from largeq.reports.headline import ENERGY_ACCURACY, basis_text, fmt, fmt_error, headline_text, relax_headline
 from largeq.reports.phases import process_start_time
 
 
@@ -79,9 +79,7 @@ def _print_relax_summary(result) -> None:
     """The run in a few lines: what was run, then the headline (the same lines as report.html's answer)."""
     s = result.summary
     print(f"{s['title']}")
-    sectors = s.get("symmetry_sectors") or {}
-    split = f" split into {len(sectors['sectors'])} symmetry sectors" if sectors.get("sectors") else ""
-    print(f"  L = {s['sites']}, {s['basis']['kind']} basis, dimension {s['basis']['dimension']:,}{split}; "
-          f"{s['method']} (tolerance {s['tolerance']:g}); initial energy {fmt(s['initial_energy'], digits=6)}")
+    print(f"  L = {s['sites']}, {basis_text(s['basis'])}; "
+          f"{s['method']} (tolerance {s['tolerance']:g}); initial energy {fmt(s['initial_energy'], ENERGY_ACCURACY, digits=6)}")
     print("\n".join(headline_text(relax_headline(s))))
     print(f"  results: {result.folder}/ (results.h5, summary.json, report.html)")

@@ -1,8 +1,8 @@
 """Time evolution of a state split over symmetry sectors: one loop, used by the main command, the
 tests and the benchmark.
 
-A z-basis product state |b> is a sum of symmetric components, psi = sum_s psi_s, one per sector s it
-touches (:func:`largeq.operators.sector_operator.split_basis_state`).  H maps no sector into another, so
+A product state (z-basis or tilted) is a sum of symmetric components, psi = sum_s psi_s, one per sector s
+it touches (:func:`largeq.operators.sector_operator.split_start`).  H maps no sector into another, so
 each component evolves on its own with :func:`largeq.engines.propagate.evolve` on the sector's operator;
 :func:`advance_sectors` drives all components through the output grid block by block (one Chebyshev
 expansion per block per sector), hands the components at every output time to a callback (observables
@@ -19,8 +19,8 @@ import numpy as np
 from largeq.engines.bounds import spectral_bounds
 from largeq.engines.propagate import evolve
 from largeq.model.pauli import PauliSum
-from largeq.operators.sector_operator import (CrossSectorDiagonal, SectorComponent, SymmetricOperator, is_invariant,
-                                              split_basis_state, stabiliser_average)
+from largeq.operators.sector_operator import (SectorComponent, SymmetricOperator, is_invariant, sector_observables,
+                                              split_start, stabiliser_average)
 
 __all__ = ["SectorProgress", "advance_sectors", "evolve_split"]
 
@@ -112,27 +112,33 @@ def _equivalences(observables, bits, group) -> dict:
     return out
 
 
-def evolve_split(H: PauliSum, bits: int, times, observables: dict[str, PauliSum], *, translation: bool = True,
+def evolve_split(H: PauliSum, start, times, observables: dict[str, PauliSum], *, translation: bool = True,
                  reflection: bool = False, spin_flip: bool = False, lookup: str = "block", tol: float = 1e-10,
-                 store_matrix: bool = True, block: int = 1) -> dict:
-    """Relaxation curves of diagonal observables from |bits>, sector by sector (:func:`advance_sectors`).
+                 store_matrix: bool = True, block: int = 1, tables: bool = False,
+                 conserve_magnetization: bool | None = None) -> dict:
+    """Relaxation curves of any Hermitian Pauli-sum observables from a product state, sector by sector
+    (:func:`advance_sectors`).
 
-    ``store_matrix`` (default True) stores each sector matrix as CSR (see
-    :class:`~largeq.operators.sector_operator.StoredSectorMatrix`); False keeps the evolution fully
+    ``start``: a z-basis integer or spinors of shape (L, 2) (tilted states; see
+    :func:`~largeq.operators.sector_operator.split_start`; ``conserve_magnetization`` None asks H).
+    The curves come from :func:`~largeq.operators.sector_operator.sector_observables` (cross terms
+    included; ``tables`` as there).  ``store_matrix`` (default True) stores each sector matrix as CSR
+    (see :class:`~largeq.operators.sector_operator.StoredSectorMatrix`); False keeps the evolution fully
     matrix-free (vectors and O(dim) tables only).
 
     Returns a dict with ``curves`` {name: array}, ``sectors`` (labels, weights, dims), ``note``,
-    ``equivalences`` {name: text} where an observable equals its stabiliser average for this state,
-    ``table_bytes``, ``bounds`` and ``matvecs``.
+    ``equivalences`` {name: text} where an observable equals its stabiliser average for this state
+    (z-basis starts with a fixed n_up), ``table_bytes``, ``bounds`` and ``matvecs``.
     """
     times = np.asarray(times, float)
-    comps, note = split_basis_state(bits, H.n_sites, translation=translation, reflection=reflection,
-                                    spin_flip=spin_flip, lookup=lookup)
-    group = comps[0].sector.group
+    comps, note = split_start(H, start, translation=translation, reflection=reflection, spin_flip=spin_flip,
+                              lookup=lookup, conserve_magnetization=conserve_magnetization)
+    sectors = [c.sector for c in comps]
+    group = sectors[0].group
     bad = [k for k, v in is_invariant(H, group).items() if not v]
     if bad:
         raise ValueError(f"H is not invariant under {', '.join(bad)}")
-    cross = CrossSectorDiagonal([c.sector for c in comps], observables)
+    cross = sector_observables(sectors, observables, tables=tables)
     ops = [SymmetricOperator(H, c.sector, check=False) for c in comps]
     if store_matrix:
         ops = [op.stored() for op in ops]
@@ -146,6 +152,9 @@ def evolve_split(H: PauliSum, bits: int, times, observables: dict[str, PauliSum]
     states = [c.vector.copy() for c in comps]
     record(0, states)
     progress = advance_sectors(ops, states, times, bounds=bounds, tol=tol, block=block, on_outputs=record)
+    equivalences = {}
+    if isinstance(start, (int, np.integer)) and group.up_spins is not None:
+        equivalences = _equivalences(observables, int(start), group)
     return {"curves": curves, "sectors": [_sector_info(c) for c in comps], "note": note,
-            "equivalences": _equivalences(observables, bits, group), "table_bytes": cross.table_bytes(),
-            "bounds": bounds, "matvecs": progress.matvecs}
+            "equivalences": equivalences, "table_bytes": cross.table_bytes(), "bounds": bounds,
+            "matvecs": progress.matvecs}

@@ -18,12 +18,15 @@ import math
 from dataclasses import dataclass, field
 from typing import Any, Sequence
 
-__all__ = ["Cell", "HeadlineLine", "EXACT_ACCURACY", "fmt", "fmt_error", "relax_headline",
-           "hamiltonian_terms", "headline_text", "lookup"]
+__all__ = ["Cell", "HeadlineLine", "EXACT_ACCURACY", "ENERGY_ACCURACY", "fmt", "fmt_error", "relax_headline",
+           "hamiltonian_terms", "headline_text", "lookup", "basis_text"]
 
 #: accuracy stated for numbers that come out of dense linear algebra (diagonal ensemble, exact
 #: thermal values): anything smaller in magnitude is numerically zero and prints as 0
 EXACT_ACCURACY = 1e-9
+#: accuracy stated for <psi|H|psi> of the initial state (a sum of O(dimension) products in double precision:
+#: roundoff ~1e-16 ||H||; common practice): smaller values print as 0
+ENERGY_ACCURACY = 1e-12
 
 
 def _finite(x: Any) -> bool:
@@ -212,8 +215,12 @@ def relax_headline(summary: dict) -> list[HeadlineLine]:
         lines.append(HeadlineLine("d_eff", parts))
     else:
         lines.append(HeadlineLine("d_eff", [eq.get("note") or eq.get("exact_note") or "not computed"]))
+    # the evolution phase (fixed once the curves exist: the same number on the page and in the final
+    # summary.json, whose wall_seconds also covers the report written after the page); runs without the
+    # phase record show the whole wall time
+    evo_key = "phase_seconds[evolution]" if _finite((summary.get("phase_seconds") or {}).get("evolution")) else "wall_seconds"
     cost = [_cell(summary, "matvecs", lambda v: f"{int(v):,}" if _finite(v) else "n/a"),
-            " matrix-vector products; evolution ", _cell(summary, "wall_seconds", lambda v: fmt(v, digits=3)), " s"]
+            " matrix-vector products; evolution ", _cell(summary, evo_key, lambda v: fmt(v, digits=3)), " s"]
     eq_seconds = (summary.get("phase_seconds") or {}).get("equilibration")
     if _finite(eq_seconds):
         cost += [", equilibrium analysis ",
@@ -286,3 +293,17 @@ def headline_text(lines: Sequence[HeadlineLine], width: int = 18) -> list[str]:
     """The headline as console lines."""
     return [f"  {ln.label:{width}s} {ln.text()}" for ln in lines]
 
+
+def basis_text(basis: dict) -> str:
+    """The basis a run evolved in, in words: "magnetization basis, dimension 12,870", or for a run in
+    symmetry sectors (``kind`` "symmetry-sector") "2 symmetry sector(s) of dimensions 257 + 230 = 487
+    (instead of magnetization dimension 12,870)"."""
+    if basis.get("kind") != "symmetry-sector":
+        return f"{basis.get('kind', '')} basis, dimension {basis.get('dimension', 0):,}"
+    dims = basis["sector_dimensions"]
+    shown = " + ".join(f"{d:,}" for d in dims[:8]) + (" + ..." if basis["sector_count"] > 8 else "")
+    text = f"{basis['sector_count']} symmetry sector(s) of dimensions {shown} = {basis['dimension']:,}"
+    plain = basis.get("replaces") or {}
+    if plain:
+        text += f" (instead of {plain.get('kind', '')} dimension {plain.get('dimension', 0):,})"
+    return text

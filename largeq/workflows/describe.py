@@ -60,14 +60,18 @@ def describe_scenario(scenario: Scenario, *, available: int | None = None) -> di
     used = [name for name, on in (("magnetization (U(1))", sym["conserves_magnetization"]),
                                   ("translation", sym["translation"]), ("spin flip", sym["spin_flip"]),
                                   ("reflection", sym["reflection"])) if on]
-    in_use = {"sectors": "magnetization, momentum and parity sectors", "magnetization": "magnetization sector",
-              "full": "none"}[plan.path]
+    if plan.path == "sectors":
+        in_use = ("magnetization, momentum and parity sectors for relax"
+                  if (plan.sector_group or {}).get("conserve_magnetization") else
+                  "momentum and parity sectors of the full space for relax")
+    else:
+        in_use = {"magnetization": "magnetization sector for relax", "full": "none"}[plan.path]
     lines = [
         f"{scenario.title}",
         f"  chain: L = {L}, {scenario.chain.boundary} boundary",
         f"  Hamiltonian: {len(H)} Pauli strings (S = sigma/2 couplings), e.g.",
         *[f"      {t}" for t in H.describe(max_terms=8)],
-        f"  symmetries of H: {', '.join(used) if used else 'none detected'}  (used by relax: {in_use})",
+        f"  symmetries of H: {', '.join(used) if used else 'none detected'}  (used: {in_use})",
         f"  initial state: {start.label}",
         f"  basis: {plan.basis_label}",
         f"      why: {plan.basis_reason}",

@@ -217,10 +217,16 @@ class SectorCount:
     weight: float
     real: bool
     label: str
+    up_spins: int | None = None
 
     @property
     def key(self) -> tuple:
         return (self.momentum, self.reflection, self.flip)
+
+    @property
+    def full_key(self) -> tuple:
+        """(n_up or None for a full-space sector, momentum, reflection parity, flip parity)."""
+        return (self.up_spins, *self.key)
 
 
 @dataclass(frozen=True)
@@ -245,6 +251,11 @@ class RunPlan:
     block : int
     store : bool
         Sector matrices stored (CSR) rather than applied matrix-free.
+    store_observables : bool
+        Observable blocks across sectors stored (CSR) rather than applied matrix-free.
+    sector_group : dict or None
+        On the sector path: the group used ({translation, reflection, spin_flip}) and
+        ``conserve_magnetization`` (sectors resolved in n_up, or full-space sectors).
     parts : dict
         Bytes of the parts of the forecast (vectors, stored matrices, their assembly, tables, interpreter).
     forecast : MemoryForecast
@@ -269,6 +280,8 @@ class RunPlan:
     available: int
     products: int = 0
     seconds_estimate: float = 0.0
+    store_observables: bool = False
+    sector_group: dict | None = None
 
     @property
     def fits(self) -> bool:
@@ -278,9 +291,10 @@ class RunPlan:
         return {"path": self.path, "reason": self.reason, "sectors_refused": self.sectors_refused,
                 "sites": self.n_sites, "up_spins": self.up_spins, "basis_dimension": self.basis_dimension,
                 "basis": self.basis_label, "dimension": self.dimension,
-                "sectors": [{"label": c.label, "momentum": c.momentum, "reflection": c.reflection, "flip": c.flip,
+                "sectors": [{"label": c.label, "up_spins": c.up_spins, "momentum": c.momentum, "reflection": c.reflection, "flip": c.flip,
                              "dimension": c.dimension, "weight": c.weight, "real": c.real} for c in self.sectors],
                 "sector_note": self.sector_note, "block": self.block, "stored_matrices": self.store,
+                "stored_observables": self.store_observables,
                 "parts": dict(self.parts), "forecast": self.forecast.as_dict(), "available_bytes": self.available,
                 "fits": self.fits, "products": self.products, "seconds_estimate": self.seconds_estimate}
 
@@ -349,13 +363,20 @@ def count_state_sectors(bits: int, n_sites: int, *, reflection: bool, spin_flip:
     return comps, note
 
 
-def sector_memory(dims: list[int], *, real: bool, n_groups: int, block: int, available: int) -> tuple[bool, dict]:
+def sector_memory(dims: list[int], *, real: bool, n_groups: int, block: int, available: int, n_sites: int = 0,
+                  off_diagonal: tuple = ()) -> tuple[bool, dict]:
     """Memory of the sector path: (store the sector matrices?, parts in bytes with 'total').
 
     Stored sector matrix: about one entry per state for every other off-diagonal group (flip-flop terms
     vanish on parallel spins) plus the diagonal; 12 bytes per real entry, 20 per complex one.  Assembling one
     sector's matrix: COO arrays sized for every group, then the CSR copy (measured ~1.35x).  Sectors are
     assembled one after the other, before the evolution allocates its vectors.
+
+    Observables across sectors (``off_diagonal``: one flag per observable, True when it is off-diagonal in
+    the z basis) are stored as CSR blocks, one per sector pair with the rows of the first sector, when the
+    sector matrices are stored and the blocks fit as well: about L/2 + 1 entries per row for an off-diagonal
+    local term summed over its translates, one for a diagonal one.  ``parts['stored_observables']`` holds
+    their bytes (0: evaluated matrix-free).
     """
     vec = 16 * sum(dims)
     stored = sum(d * (n_groups / 2 + 1) * (12 if real else 20) + 8 * d for d in dims)
@@ -364,9 +385,79 @@ def sector_memory(dims: list[int], *, real: bool, n_groups: int, block: int, ava
     vectors = (4 + 2 * block) * vec
     stored_peak = max(stored * (1 - largest / sum(dims)) + build, stored + vectors)
     store = stored_peak <= 0.8 * available
+    rows = (len(dims) + 1) / 2 * sum(dims)
+    obs = sum(rows * ((n_sites / 2 + 1) if off else 1) * (12 if real else 20) for off in off_diagonal)
+    store_obs = bool(off_diagonal) and store and stored_peak + obs <= 0.8 * available
+    if store_obs:
+        stored_peak += obs
     total = int((stored_peak if store else vectors) + OVERHEAD_BYTES)
     return store, {"vectors": int(vectors), "stored_matrices": int(stored) if store else 0,
-                   "matrix_assembly": int(build) if store else 0, "interpreter": OVERHEAD_BYTES, "total": total}
+                   "matrix_assembly": int(build) if store else 0,
+                   "stored_observables": int(obs) if store_obs else 0, "interpreter": OVERHEAD_BYTES, "total": total}
+
+
+def sector_decision(*, symmetry: str, method: str, symmetries: dict, start, basis_up_spins: int | None,
+                    plain_dimension: int, basis_label: str) -> dict:
+    """Whether ``relax`` evolves in momentum (+ reflection, spin-flip) sectors, and in which ones,
+    decided without enumerating any sector (``plan_run``, hence describe, forecast and relax, call this).
+
+    The sectors apply when the method is Chebyshev and H is translation invariant; any product
+    start (z-basis or tilted) and any Hermitian Pauli-sum observable are handled (observables across
+    sectors by ``largeq.operators.sector_operator.sector_observables``).  With a conserved
+    magnetization the sectors are resolved in n_up as well; otherwise they are sectors of the full
+    2^L space.  The touched sectors and their weights come from
+    ``largeq.operators.sector_operator.product_sector_weights`` (O(|G| L^2)), their dimensions from
+    character sums over fixed points (``sector_dimensions``); the sectors are used when their total
+    dimension is at most half the basis ``relax`` would otherwise use (a state spread over every
+    momentum gains nothing and would pay for the cross-sector pairs).
+
+    Returns a dict: ``use`` (bool), ``reason`` (words), and when translation applies ``group``
+    (flags), ``conserve_magnetization``, ``sectors`` [{key: (n_up or None, m, r, f), weight,
+    dimension}], ``total_dimension``, ``plain_dimension``, ``note``.
+    """
+    from largeq.operators.sector_operator import choose_sectors
+
+    sym = symmetries
+    if symmetry == "off":
+        return {"use": False, "reason": "symmetry sectors switched off (symmetry = off)"}
+    if method != "chebyshev":
+        return {"use": False, "reason": f"symmetry sectors need the Chebyshev method (the scenario asks for {method})"}
+    if not sym["translation"]:
+        return {"use": False, "reason": "H is not translation invariant (open chain, or site-dependent couplings/fields)"}
+    if basis_up_spins is not None and start.up_spins is None:
+        return {"use": False, "reason": (f"the run evolves the projection of the initial state on n_up = "
+                                         f"{basis_up_spins} (sector.up_spins), not the state itself")}
+    conserve = bool(sym["conserves_magnetization"])
+    choice = choose_sectors(start.spinors, conserve_magnetization=conserve, reflection=sym["reflection"],
+                            spin_flip=sym["spin_flip"])
+    total = int(sum(s["dimension"] for s in choice["sectors"]))
+    plain = int(plain_dimension)
+    choice.update(total_dimension=total, plain_dimension=plain, conserve_magnetization=conserve)
+    if total > plain // 2:
+        choice.update(use=False, reason=(f"the initial state spreads over {len(choice['sectors'])} symmetry sectors "
+                                         f"of total dimension {total:,}, not less than half of {plain:,}: "
+                                         f"evolving in {basis_label} instead"))
+        return choice
+    dims = [s["dimension"] for s in choice["sectors"]]
+    shown = " + ".join(f"{d:,}" for d in dims[:12]) + (f" + ... ({len(dims)} sectors)" if len(dims) > 12 else "")
+    choice.update(use=True, reason=(f"H is translation invariant: the initial state splits into {len(dims)} symmetry "
+                                    f"sector(s) of dimensions {shown} = {total:,} (instead of {plain:,}); "
+                                    f"{choice['note']}"))
+    return choice
+
+
+def _sector_count(L: int, sec: dict) -> SectorCount:
+    n, m, r, f = sec["key"]
+    real = m is None or (2 * m) % L == 0
+    parts = [f"n_up = {n} of L = {L}" if n is not None else f"all magnetizations of L = {L}"]
+    if m is not None:
+        parts.append(f"k = 2pi*{m}/{L}")
+    if r is not None:
+        parts.append(f"reflection {r:+d}")
+    if f is not None:
+        parts.append(f"spin flip {f:+d}")
+    label = ", ".join(parts) + f" (dimension {sec['dimension']:,}, {'real' if real else 'complex'})"
+    return SectorCount(m, r, f, int(sec["dimension"]), float(sec["weight"]), real, label, n)
 
 
 def check_time_resolution(scenario, H) -> None:
@@ -464,38 +555,32 @@ def plan_run(scenario, *, symmetry: str = "auto", block: int | None = None, avai
     label = basis_label(L, up)
     tables = basis_table_bytes(L, up)
 
-    refused = ""
-    if symmetry == "off":
-        refused = "symmetry sectors switched off (--symmetry off)"
-    elif method != "chebyshev":
-        refused = f"symmetry sectors need the Chebyshev method (the scenario asks for {method})"
-    elif not sym["translation"]:
-        refused = "H is not translation invariant (open chain, or site-dependent couplings/fields)"
-    elif not sym["conserves_magnetization"]:
-        refused = "H does not conserve the magnetization"
-    elif start.bits is None:
-        refused = "the initial state is not a z-basis product state"
-    elif any(not o.pauli.is_diagonal() for o in observables.values()):
-        refused = "an observable is off-diagonal in the z basis (only diagonal ones are evaluated across sectors)"
+    choice = sector_decision(symmetry=symmetry, method=method, symmetries=sym, start=start, basis_up_spins=up,
+                             plain_dimension=D, basis_label=label)
+    refused = "" if choice["use"] else choice["reason"]
     if not refused:
-        n_up = start.up_spins
-        comps, note = count_state_sectors(start.bits, L, reflection=sym["reflection"],
-                                          spin_flip=sym["spin_flip"] and 2 * n_up == L)
+        comps = [_sector_count(L, sec) for sec in choice["sectors"]]
+        note = choice["note"]
         dims = [c.dimension for c in comps]
         blk = block or 8
         store, mem = sector_memory(dims, real=all(c.real for c in comps), n_groups=len(H.groups()), block=blk,
-                                   available=avail)
+                                   available=avail, n_sites=L,
+                                   off_diagonal=tuple(not o.pauli.is_diagonal() for o in observables.values()))
+        store_obs = bool(mem["stored_observables"])
         mem["tables"] = tables
         total = mem["total"] + tables
         mem["total"] = total
         fc = MemoryForecast("chebyshev (sectors)", int(sum(dims)), (4 + 2 * blk) * len(dims), max(dims) * COMPLEX,
-                            int(mem["stored_matrices"]) + tables, int(total),
-                            f"{len(dims)} sector(s) {dims}; stored sector matrices: {'yes' if store else 'no'}")
-        reason = (f"H is translation invariant: the initial state splits into {len(comps)} symmetry sector(s) of "
-                  f"dimensions {', '.join(f'{d:,}' for d in dims)} (instead of {D:,}); {note}")
+                            int(mem["stored_matrices"]) + int(mem["stored_observables"]) + tables, int(total),
+                            f"{len(dims)} sector(s) {dims}; stored sector matrices: {'yes' if store else 'no'}; "
+                            f"stored observable blocks: {'yes' if store_obs else 'no'}")
+        # every sector runs its own bounds and expansions: the products add up over the sectors, the time
+        # is that of one run on the summed dimension
         products, seconds = _time_estimate(scenario, H, int(sum(dims)), blk)
-        return RunPlan("sectors", reason, "", L, up, D, label, basis_reason, int(sum(dims)), tuple(comps), note, blk,
-                       store, mem, fc, avail, products, seconds)
+        products *= len(dims)
+        group = dict(choice["group"], conserve_magnetization=choice["conserve_magnetization"])
+        return RunPlan("sectors", choice["reason"], "", L, up, D, label, basis_reason, int(sum(dims)), tuple(comps),
+                       note, blk, store, mem, fc, avail, products, seconds, store_obs, group)
     blk = block or choose_block(D, L, n_times, avail, method)
     fc = evolution_forecast(D, L, method=method, block=blk)
     mem = {"vectors": int(fc.vectors * fc.vector_bytes), "tables": int(fc.table_bytes),
@@ -506,7 +591,8 @@ def plan_run(scenario, *, symmetry: str = "auto", block: int | None = None, avai
                    mem, fc, avail, products, seconds)
 
 
-__all__ += ["RunPlan", "SectorCount", "plan_run", "check_time_resolution", "count_state_sectors", "choose_block", "sector_memory"]
+__all__ += ["RunPlan", "SectorCount", "plan_run", "check_time_resolution", "count_state_sectors", "choose_block", "sector_memory",
+           "sector_decision"]
 
 
 def check_basis_fits(scenario, forecast_for, available: int | None = None) -> None:

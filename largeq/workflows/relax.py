@@ -25,7 +25,7 @@ from largeq.engines.propagate import evolve
 from largeq.engines.sector_evolution import advance_sectors
 from largeq.workflows.equilibration_step import equilibration_report
 from largeq.workflows.relax_report import draw_relax_plots, known_curve_summary, write_relax_report
-from largeq.workflows.planning import (available_bytes, check_fits, choose_block, plan_run)
+from largeq.workflows.planning import available_bytes, check_fits, choose_block, plan_run, sector_decision
 from largeq.reports.progress import progress_bar
 from largeq.reports.checkpoint import CHECKPOINT_NAME, Checkpointer, load_checkpoint
 from largeq.reports.run_record import run_attributes
@@ -39,7 +39,8 @@ from largeq.reports.phases import PhaseClock
 from largeq.reports.store import read_summary
 from largeq.workflows.errors import OptionError, WorkflowError
 
-__all__ = ["RelaxOptions", "RelaxRun", "run_relaxation", "resume_relaxation", "choose_block"]
+__all__ = ["RelaxOptions", "RelaxRun", "run_relaxation", "resume_relaxation", "choose_block", "sector_choice",
+           "sector_plan"]
 
 SCENARIO_FILE = "scenario.toml"
 
@@ -65,8 +66,8 @@ class RelaxOptions:
         Seed of the random vectors used by the estimators (recorded in the results).
     symmetry : str
         "auto": evolve in momentum (and reflection / spin-flip) sectors when H is translation
-        invariant, the start is a z-basis state and every observable is diagonal; "off": always
-        the magnetization sector (or full space).
+        invariant and the state's sectors are smaller than the basis (``sector_choice``), any product
+        start and any observable; "off": always the magnetization sector (or full space).
     window_start : float or None
         Start of the late averaging window (time units); None takes the scenario's ``time.window_start``
         (itself default: the last half of the run).
@@ -218,21 +219,34 @@ def _prepare(scenario: Scenario, options: RelaxOptions):
     return problem, times, plan.block, plan.forecast, sector_plan(problem, plan)
 
 
+def sector_choice(problem: Problem, options: RelaxOptions = RelaxOptions()) -> dict:
+    """Whether ``relax`` evolves ``problem`` in symmetry sectors, and in which ones, decided without
+    enumerating any sector: :func:`largeq.workflows.planning.sector_decision` (the rule ``plan_run``, hence
+    describe, forecast and relax, applies) on the built problem."""
+    return sector_decision(symmetry=options.symmetry, method=problem.scenario.numerics.method,
+                           symmetries=problem.symmetries, start=problem.start, basis_up_spins=problem.basis.up_spins,
+                           plain_dimension=int(problem.basis.dim), basis_label=problem.basis.label)
+
+
 def sector_plan(problem: Problem, plan) -> dict:
     """The sector components of the initial state for a plan on the sector path (enumerates the sectors:
-    call it after the memory check).  The counted dimensions of the plan are checked against the built ones."""
-    from largeq.operators.sector_operator import split_basis_state
+    call it after the memory check).  z-basis starts with a conserved magnetization are split by
+    ``split_basis_state``, any other product start (tilted spins, full-space sectors) by
+    ``split_product_state``.  The counted sectors of the plan are checked against the built ones."""
+    from largeq.operators.sector_operator import split_basis_state, split_product_state
 
-    sym, start = problem.symmetries, problem.start
-    L, n_up = problem.n_sites, start.up_spins
-    comps, note = split_basis_state(start.bits, L, reflection=sym["reflection"],
-                                    spin_flip=sym["spin_flip"] and 2 * n_up == L)
-    built = [(c.sector.key, int(c.sector.dim)) for c in comps]
-    counted = [(c.key, c.dimension) for c in plan.sectors]
+    start, g, L = problem.start, plan.sector_group, problem.n_sites
+    if start.bits is not None and g["conserve_magnetization"]:
+        comps, note = split_basis_state(start.bits, L, reflection=g["reflection"], spin_flip=g["spin_flip"])
+    else:
+        comps, note = split_product_state(start.spinors, conserve_magnetization=g["conserve_magnetization"],
+                                          reflection=g["reflection"], spin_flip=g["spin_flip"])
+    built = sorted(((c.sector.full_key, int(c.sector.dim)) for c in comps), key=repr)
+    counted = sorted(((c.full_key, c.dimension) for c in plan.sectors), key=repr)
     if built != counted:
         raise RuntimeError(f"sector plan {counted} differs from the built sectors {built} (bug)")
     return {"components": comps, "note": note, "block": plan.block, "store": plan.store, "forecast": plan.forecast,
-            "reason": plan.reason}
+            "reason": plan.reason, "store_observables": plan.store_observables}
 
 
 def run_relaxation(scenario: Scenario, folder=None, options: RelaxOptions = RelaxOptions(), *,
@@ -375,7 +389,7 @@ class _SectorRecorder(_Recorder):
 def _execute_sectors(problem: Problem, text: str, folder: Path, times, plan, options, *, resume: bool,
                      clock: PhaseClock) -> RelaxRun:
     """The relaxation run with the state split over symmetry sectors, each evolved on its own."""
-    from largeq.operators.sector_operator import CrossSectorDiagonal, SymmetricOperator
+    from largeq.operators.sector_operator import SymmetricOperator, sector_observables
 
     scenario = problem.scenario
     fp = fingerprint(text)
@@ -386,7 +400,8 @@ def _execute_sectors(problem: Problem, text: str, folder: Path, times, plan, opt
         ops = [SymmetricOperator(problem.hamiltonian, c.sector) for c in comps]
         if plan["store"]:
             ops = [op.stored() for op in ops]
-    cross = CrossSectorDiagonal([c.sector for c in comps], {n: o.pauli for n, o in problem.observables.items()})
+        cross = sector_observables([c.sector for c in comps], {n: o.pauli for n, o in problem.observables.items()},
+                                   store=plan.get("store_observables", False))
     psi_start = [np.ascontiguousarray(c.vector, dtype=np.complex128) for c in comps]
     rec = _SectorRecorder(problem, ops, cross, psi_start, len(times))
     states = [v.copy() for v in psi_start]
@@ -430,7 +445,9 @@ def _execute_sectors(problem: Problem, text: str, folder: Path, times, plan, opt
     bar.close()
     stats = progress
     sector_info = {"note": plan["note"], "reason": plan["reason"], "stored_matrices": plan["store"],
-                   "sectors": [{"label": c.sector.label, "dimension": int(c.sector.dim), "weight": float(c.weight)}
+                   "stored_observables": plan.get("store_observables", False),
+                   "sectors": [{"label": c.sector.label, "key": list(c.sector.full_key), "dimension": int(c.sector.dim),
+                                "weight": float(c.weight)}
                                for c in comps]}
     summary = _finish(problem, text, folder, times, rec, bounds[0], block, plan["forecast"], stats, matvecs, clock,
                       1.0, options, sectors=sector_info)
@@ -508,6 +525,7 @@ def _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, m
     }
     attrs = run_attributes(
         "relax", text, scenario.title, problem=problem,
+        basis=_basis_summary(problem, sectors),
         basis_reason=problem.basis_reason if sectors is None else sectors["reason"],
         symmetry_sectors=sectors or {},
         initial_weight_in_basis=captured,
@@ -521,7 +539,7 @@ def _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, m
     summary = {
         "title": scenario.title,
         "sites": problem.n_sites,
-        "basis": problem.basis.describe() | {"reason": problem.basis_reason if sectors is None else sectors["reason"]},
+        "basis": _basis_summary(problem, sectors),
         "symmetry_sectors": sectors,
         "initial_state": problem.start.label,
         "initial_energy": float(rec.energy[0]),
@@ -571,6 +589,19 @@ def _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, m
     write_summary(folder / "summary.json", summary)
     write_relax_report(folder, draw=False)
     return summary
+
+
+def _basis_summary(problem, sectors: dict | None) -> dict:
+    """The basis the run evolved in: the magnetization sector / full space, or the symmetry sectors
+    (kind "symmetry-sector", their total dimension, each sector's label and dimension, and the basis
+    they replace)."""
+    if sectors is None:
+        return problem.basis.describe() | {"reason": problem.basis_reason}
+    dims = [s["dimension"] for s in sectors["sectors"]]
+    return {"kind": "symmetry-sector", "sites": problem.n_sites, "up_spins": problem.basis.up_spins,
+            "dimension": int(sum(dims)), "sector_count": len(dims), "sector_dimensions": dims,
+            "sector_labels": [s["label"] for s in sectors["sectors"]],
+            "replaces": problem.basis.describe(), "reason": sectors["reason"]}
 
 
 def _field_values(problem):

@@ -17,7 +17,7 @@ import numpy as np
 from largeq import __version__
 from largeq.analysis.references import known_curves
 from largeq.reports import html, plots
-from largeq.reports.headline import (EXACT_ACCURACY, fmt, fmt_error, hamiltonian_terms, relax_headline)
+from largeq.reports.headline import (ENERGY_ACCURACY, EXACT_ACCURACY, basis_text, fmt, fmt_error, hamiltonian_terms, relax_headline)
 from largeq.reports.store import read_results, read_summary
 from largeq.scenario.spec import load_scenario
 
@@ -155,9 +155,8 @@ def _comparison_table(summary: dict) -> tuple[list[str], list[list[str]]]:
 def _run_rows(summary: dict, attrs: dict) -> list:
     grid = summary.get("time_grid") or {}
     rows = [
-        ("basis", f"{summary['basis'].get('kind', '')}, dimension {summary['basis'].get('dimension', 0):,}",
-         summary["basis"].get("reason", "")),
-        ("initial state", summary["initial_state"], f"⟨H⟩ = {fmt(summary['initial_energy'], digits=6)}"),
+        ("basis", basis_text(summary["basis"]), summary["basis"].get("reason", "")),
+        ("initial state", summary["initial_state"], f"⟨H⟩ = {fmt(summary['initial_energy'], ENERGY_ACCURACY, digits=6)}"),
         ("method", summary["method"], f"tolerance {summary['tolerance']:g}; {summary['block']} output times per expansion"),
         ("time grid", f"t = 0 .. {fmt(grid.get('t_max'), digits=6)}, {grid.get('points', '?')} points",
          f"step {fmt(grid.get('step'), digits=4)} (1/J)" if grid.get("step") else ""),
