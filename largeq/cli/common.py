@@ -45,3 +45,23 @@ def check_seed(seed) -> None:
     """UsageError for a seed numpy cannot take (negative)."""
     if seed is not None and seed < 0:
         raise UsageError(f"--seed: got {seed}; allowed: an integer >= 0")
+
+
+def _window_start(text: str) -> float:
+    import argparse
+    import math
+
+    try:
+        value = float(text)
+    except ValueError:
+        value = float("nan")
+    if not (math.isfinite(value) and value >= 0):
+        raise argparse.ArgumentTypeError(f"got {text!r}; allowed: a time >= 0 below the scenario's t_max")
+    return value
+
+
+def add_window_argument(p) -> None:
+    """``--window-start T``: where the late averaging window begins (overrides the scenario's time.window_start)."""
+    p.add_argument("--window-start", type=_window_start, default=None, metavar="T",
+                   help="start of the late averaging window (time units; default: the scenario's time.window_start, "
+                        "else the last half of the run)")

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from largeq.cli.common import (UsageError, add_overwrite_argument, add_progress_arguments, add_scenario_arguments,
+                               add_window_argument,
                                check_seed, refuse_finished_folder, resolve_scenario)
 from largeq.workflows.crosscheck import CrosscheckOptions, run_crosscheck
 from largeq.constants import CROSSCHECK_SEED, MAX_DENSE_DIM
@@ -16,7 +17,8 @@ def run(args) -> int:
     scenario = resolve_scenario(args.scenario, args.sites)
     sizes = args.sizes or [scenario.n_sites]
     try:
-        options = CrosscheckOptions(args.moments, args.vectors, args.seed, args.max_dim, args.progress)
+        options = CrosscheckOptions(args.moments, args.vectors, args.seed, args.max_dim, args.progress,
+                                    window_start=args.window_start, dos_vectors=args.dos_vectors)
     except ValueError as exc:
         raise UsageError(str(exc)) from None
     folder, summary = run_crosscheck(scenario, sizes, args.out, options)
@@ -38,6 +40,9 @@ def add_parser(subparsers) -> None:
     p.add_argument("--vectors", type=int, default=20, metavar="R",
                    help="random vectors for the DOS trace and thermal averages (default 20)")
     p.add_argument("--seed", type=int, default=CROSSCHECK_SEED, metavar="S", help="seed of all random draws")
+    p.add_argument("--dos-vectors", type=int, default=None, metavar="R",
+                   help="random vectors of the KPM density of states in the d_eff estimate (default: --vectors)")
+    add_window_argument(p)
     p.add_argument("--max-dim", type=int, default=MAX_DENSE_DIM, metavar="D",
                    help=f"largest dense diagonalization (default {MAX_DENSE_DIM})")
     add_progress_arguments(p)

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from largeq.cli.common import UsageError, add_progress_arguments, add_scenario_arguments, resolve_scenario
+from largeq.cli.common import add_window_argument, UsageError, add_progress_arguments, add_scenario_arguments, resolve_scenario
 from largeq.workflows.disorder import run_disorder_relaxation
 from largeq.workflows.relax import RelaxOptions, resume_relaxation, run_relaxation
 from largeq.constants import ESTIMATOR_SEED
@@ -28,6 +28,7 @@ def add_parser(sub) -> None:
     p.add_argument("--symmetry", choices=("auto", "off"), default=None,
                    help="evolve in momentum/reflection/spin-flip sectors when the model, the start and the "
                         "observables allow it (auto), or always in the magnetization sector (off)")
+    add_window_argument(p)
     p.add_argument("--realizations", type=int, default=1, metavar="N",
                    help="disorder realizations (random fields only): one sub-folder each plus their average")
     add_progress_arguments(p)
@@ -36,7 +37,8 @@ def add_parser(sub) -> None:
 
 def run(args) -> int:
     # options that change the numbers: only those given on the command line count on a resume
-    given = {k: getattr(args, k) for k in ("equilibration", "seed", "symmetry", "block") if getattr(args, k) is not None}
+    given = {k: getattr(args, k) for k in ("equilibration", "seed", "symmetry", "block", "window_start")
+             if getattr(args, k) is not None}
     options = RelaxOptions(checkpoint_seconds=args.checkpoint_every, progress=args.progress,
                            started=process_start_time(), **given)
     if args.resume:

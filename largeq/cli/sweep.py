@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from largeq.cli.common import UsageError, check_seed, resolve_scenario
+from largeq.cli.common import add_window_argument, UsageError, check_seed, resolve_scenario
 from largeq.workflows.sweep import SweepOptions, format_table, run_sweep
 from largeq.constants import MAX_DENSE_DIM, SWEEP_SEED
 
@@ -26,6 +26,7 @@ def add_parser(subparsers) -> None:
     p.add_argument("--no-thermal", action="store_true", help="skip canonical and microcanonical values")
     p.add_argument("--kpm-everywhere", action="store_true", help="also estimate d_eff by KPM where it is exact")
     p.add_argument("--seed", type=int, default=SWEEP_SEED, metavar="S", help="seed of the random vectors")
+    add_window_argument(p)
     p.set_defaults(func=run)
 
 
@@ -44,7 +45,7 @@ def run(args) -> int:
     scenario = resolve_scenario(args.scenario)
     opts = SweepOptions(target=args.target, realizations=args.realizations, max_dim=args.max_dim,
                         n_moments=args.moments, n_vectors=args.vectors, thermal=not args.no_thermal,
-                        seed=args.seed, kpm_everywhere=args.kpm_everywhere)
+                        seed=args.seed, kpm_everywhere=args.kpm_everywhere, window_start=args.window_start)
     mode = "serial" if args.serial else ("scheduler" if args.scheduler else "local")
     print(f"{scenario.title}: sweep over L = {' '.join(map(str, sorted(set(args.sizes))))} ({mode})")
     folder, summary = run_sweep(scenario, args.sizes, args.out, opts, mode=mode, workers=args.workers,

@@ -94,7 +94,11 @@ class RelaxOptions:
 
 def window_start_of(scenario, override: float | None = None) -> float | None:
     """The late window's start: ``override`` if given, else the scenario's ``time.window_start`` (or None)."""
-    return override if override is not None else scenario.time.window_start
+    ws = override if override is not None else scenario.time.window_start
+    if ws is not None and not (0.0 <= ws < scenario.time.t_max):
+        raise OptionError(f"window start: got {ws!r}; allowed: a time in [0, {scenario.time.t_max:g}) "
+                          "(the scenario's time grid)")
+    return ws
 
 
 #: options that change the numbers of a run: recorded in the run folder and restored by a resume
@@ -257,6 +261,7 @@ def run_relaxation(scenario: Scenario, folder=None, options: RelaxOptions = Rela
     A folder that already holds an unfinished run is refused (use :func:`resume_relaxation`); one that holds
     a finished run is refused unless ``overwrite``.
     """
+    window_start_of(scenario, options.window_start)  # a window outside the time grid is refused up front
     clock = PhaseClock(options.started)
     text = scenario_to_toml(scenario)
     if folder is not None and (Path(folder) / CHECKPOINT_NAME).exists():
