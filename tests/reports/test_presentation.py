@@ -23,7 +23,7 @@ from largeq.cli import main
 from largeq.reports.headline import fmt, fmt_error, lookup, relax_headline
 from largeq.scenario.examples import builtin_examples, examples_markdown
 
-REPO = Path(__file__).resolve().parents[1]
+REPO = Path(__file__).resolve().parents[2]
 
 
 # ------------------------------------------------------------------------------------------ formatting

@@ -19,7 +19,7 @@ from largeq.reports.store import read_results
 from largeq.scenario import resolve_scenario
 from largeq.workflows.planning import count_state_sectors, format_bytes, plan_run
 
-ROOT = Path(__file__).resolve().parents[1]
+ROOT = Path(__file__).resolve().parents[2]
 ENV = dict(os.environ, PYTHONPATH=str(ROOT), LARGEQ_PROGRESS="0")
 
 

@@ -24,7 +24,7 @@ from largeq.engines.kpm import (
     reconstruct_density,
 )
 
-from ._kpm_models import j1j2_xxz_ring, neel_state, real_csr
+from .._kpm_models import j1j2_xxz_ring, neel_state, real_csr
 
 
 @pytest.fixture(scope="module")

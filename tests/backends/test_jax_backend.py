@@ -28,7 +28,7 @@ from largeq.basis.spaces import full_basis, magnetization_basis
 from largeq.operators.pauli_operator import PauliOperator
 from largeq.model.pauli import PauliSum, pauli_string
 
-ROOT = Path(__file__).resolve().parents[1]
+ROOT = Path(__file__).resolve().parents[2]
 TOL = 1e-12
 
 
@@ -330,7 +330,7 @@ def test_importing_largeq_does_not_import_jax():
 SHARD_SCRIPT = """
     import json, sys
     import numpy as np
-    sys.path.insert(0, "tests")
+    sys.path.insert(0, "tests/backends")
     import jax
     from test_jax_backend import CASES
     from largeq.backends.jax_backend import JaxPauliOperator, evolve_jax, chebyshev_moments_jax, make_mesh

@@ -14,7 +14,7 @@ from largeq.engines.exact import (
     quench_sectors,
 )
 
-from ._exact_models import (
+from .._exact_models import (
     heisenberg,
     mixed_field_ising,
     neel_state,

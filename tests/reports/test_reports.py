@@ -47,7 +47,7 @@ from largeq.reports.store import (
 )
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
-REPO_ROOT = Path(__file__).resolve().parents[1]
+REPO_ROOT = Path(__file__).resolve().parents[2]
 
 
 # ----------------------------------------------------------------------------- HDF5 results

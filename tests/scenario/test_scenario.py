@@ -15,7 +15,7 @@ from hypothesis import strategies as st
 from largeq.scenario.spec import (Scenario, ScenarioError, load_scenario, parse_scenario, scenario_to_dict,
                                   scenario_to_toml)
 
-REPO = Path(__file__).resolve().parents[1]
+REPO = Path(__file__).resolve().parents[2]
 
 
 def base() -> dict:

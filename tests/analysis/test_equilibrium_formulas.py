@@ -8,7 +8,7 @@ from largeq.analysis.equilibrium_formulas import (GOE_R, GUE_R, POISSON_R, Finit
                                     fluctuation_bound, level_spacing_ratio, survival_plateau)
 from largeq.engines.exact import diagonalize, quench_exact
 
-from ._exact_models import (
+from .._exact_models import (
     heisenberg,
     mixed_field_ising,
     neel_state,

@@ -332,7 +332,7 @@ def test_stored_matrix_expectation_matches_matrix_free():
     from largeq.basis.sectors import symmetric_sector
     from largeq.operators.sector_operator import SymmetricOperator
     sys_path_bench = __import__("sys").path
-    sys_path_bench.insert(0, str(__import__("pathlib").Path(__file__).resolve().parents[1] / "benchmarks"))
+    sys_path_bench.insert(0, str(__import__("pathlib").Path(__file__).resolve().parents[2] / "benchmarks"))
     from _common import j1j2_ring
 
     L = 12

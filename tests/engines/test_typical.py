@@ -23,7 +23,7 @@ from largeq.engines.typical import (
     trace_estimate,
 )
 
-from ._kpm_models import j1j2_xxz_ring, mixed_field_ising, pauli, real_csr, xx_free_fermion_energy, xx_ring
+from .._kpm_models import j1j2_xxz_ring, mixed_field_ising, pauli, real_csr, xx_free_fermion_energy, xx_ring
 
 
 def test_random_state_kinds():

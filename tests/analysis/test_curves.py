@@ -8,7 +8,7 @@ from largeq.analysis.curves import (analyse_curve, integrated_autocorrelation_ti
                                     window_mean)
 from largeq.engines.exact import diagonalize, quench_exact
 
-from ._exact_models import mixed_field_ising, site_op
+from .._exact_models import mixed_field_ising, site_op
 
 A0, B, TAU, OMEGA, SIGMA, TAU_C = 0.3, 1.0, 5.0, 2.0, 0.02, 0.5
 
