@@ -585,7 +585,7 @@ def _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, m
     summary["wall_seconds"] = clock.total()
     summary["phases"] = summary["phase_seconds"] = clock.as_dict()
     write_summary(folder / "summary.json", summary)
-    with clock.phase("plots"):
+    with clock.phase("plots and report"):
         draw_relax_plots(folder)
     # written again so that the wall time covers the whole command; the page (milliseconds) comes last and
     # shows exactly the numbers of summary.json

@@ -209,7 +209,7 @@ def test_group_elements_against_dense_commutation():
     for pr in (staggered_xxz(6, "periodic"), j1j2(6), mfi_ring(6, {"state": "neel"})):
         L = pr.n_sites
         h = pr.hamiltonian
-        from tests.test_model import dense  # the model tests' dense Pauli reference
+        from tests.model.test_model import dense  # the model tests' dense Pauli reference
         hd = dense(h)
         found = set(pr.group.elements)
         for g in msym.candidates(L, True):
@@ -261,7 +261,7 @@ def test_total_spin_detection():
     assert not build_problem(parse_scenario(d)).symmetries["total_spin"]
     assert not staggered_xxz(8).symmetries["total_spin"]
     # S^2 from the Pauli algebra has eigenvalues S(S + 1), S = 0..L/2 (numpy on the dense matrix)
-    from tests.test_model import dense
+    from tests.model.test_model import dense
     ev = np.linalg.eigvalsh(dense(msym.total_spin_squared(6)))
     assert set(np.round(ev, 9)) == {s * (s + 1.0) for s in range(4)}
 
