@@ -88,7 +88,29 @@ def fused_arguments(n: int, coeff_dtype, x, y, alpha, beta, gamma):
     return x, scal
 
 
-class PauliOperator(LinearOperator):
+class FusedOperator(LinearOperator):
+    """What every matrix-free operator here shares: products, adjoint and result dtype, all through the
+    subclass's in-place ``fused_update(x, y, alpha, beta, gamma)`` (``coeff_dtype`` and ``hermitian`` set
+    by the subclass)."""
+
+    def _vec_dtype(self, x):
+        return np.result_type(self.coeff_dtype, x.dtype)
+
+    def _matvec(self, x):
+        x = np.ascontiguousarray(np.asarray(x).reshape(-1))
+        y = np.empty(self.shape[0], dtype=self._vec_dtype(x))
+        return self.fused_update(x, y, 1.0, 0.0, 0.0)
+
+    def _matmat(self, X):
+        return np.column_stack([self._matvec(X[:, j]) for j in range(X.shape[1])])
+
+    def _adjoint(self):
+        if self.hermitian:
+            return self
+        raise NotImplementedError("adjoint of a non-Hermitian Pauli sum is not provided")
+
+
+class PauliOperator(FusedOperator):
     """A Pauli sum on a two-level basis, applied matrix-free.
 
     Parameters
@@ -263,9 +285,6 @@ class PauliOperator(LinearOperator):
         return int(sum(a.nbytes for a in arrays)) + self.basis.table_bytes()
 
     # ------------------------------------------------------------------ products
-    def _vec_dtype(self, x):
-        return np.result_type(self.coeff_dtype, x.dtype)
-
     def _tile_args(self, m: int):
         """Tiles of blocks for m real columns (see ``kernels.tiled_kernel``) and thread scratch."""
         key = (m, numba.get_num_threads())
@@ -343,19 +362,6 @@ class PauliOperator(LinearOperator):
             self.fused_update(np.ascontiguousarray(X[:, j]), yj, alpha, beta, gamma)
             Y[:, j] = yj
         return Y
-
-    def _matvec(self, x):
-        x = np.ascontiguousarray(np.asarray(x).reshape(-1))
-        y = np.empty(self.shape[0], dtype=self._vec_dtype(x))
-        return self.fused_update(x, y, 1.0, 0.0, 0.0)
-
-    def _matmat(self, X):
-        return np.column_stack([self._matvec(X[:, j]) for j in range(X.shape[1])])
-
-    def _adjoint(self):
-        if self.hermitian:
-            return self
-        raise NotImplementedError("adjoint of a non-Hermitian Pauli sum is not provided")
 
     def expectation(self, x: np.ndarray) -> complex:
         """<x|A|x> for a (not necessarily normalised) vector x, without temporaries of size dim."""

@@ -23,10 +23,9 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import scipy.sparse as sp
-from scipy.sparse.linalg import LinearOperator
 
 from largeq.basis import _sector_kernels as sk
-from largeq.operators.pauli_operator import fused_arguments
+from largeq.operators.pauli_operator import FusedOperator, fused_arguments
 from largeq.model import symmetry as msym
 from largeq.model.pauli import PauliSum
 from largeq.basis.sectors import GroupSpec, SymmetricSector, orbit_representatives, symmetric_sector
@@ -47,7 +46,7 @@ def is_invariant(ps: PauliSum, group: GroupSpec) -> dict[str, bool]:
 
 
 # --------------------------------------------------------------------------- operator
-class SymmetricOperator(LinearOperator):
+class SymmetricOperator(FusedOperator):
     """A G-invariant Pauli sum on one symmetry sector, applied matrix-free (gather form).
 
     (A x)_i = sum_{strings} c' (-1)^{popcount(z & ~b)} chi(g') sqrt(|S_r| / |S_{r_i}|) x[idx(r)],
@@ -103,9 +102,6 @@ class SymmetricOperator(LinearOperator):
     def table_bytes(self) -> int:
         return int(self._diag.nbytes + sum(a.nbytes for a in self._groups)) + self.sector.table_bytes()
 
-    def _vec_dtype(self, x):
-        return np.result_type(self.coeff_dtype, x.dtype)
-
     def fused_update(self, x, y, alpha=1.0, beta=0.0, gamma=0.0):
         """In place ``y <- alpha * (A x) + beta * x + gamma * y``; x and y distinct 1-d arrays."""
         n = self.shape[0]
@@ -115,19 +111,6 @@ class SymmetricOperator(LinearOperator):
         with threads_for(n):
             sk.sym_fused(*self._args(), x, y, *scal)
         return y
-
-    def _matvec(self, x):
-        x = np.ascontiguousarray(np.asarray(x).reshape(-1))
-        y = np.empty(self.shape[0], dtype=self._vec_dtype(x))
-        return self.fused_update(x, y, 1.0, 0.0, 0.0)
-
-    def _matmat(self, X):
-        return np.column_stack([self._matvec(X[:, j]) for j in range(X.shape[1])])
-
-    def _adjoint(self):
-        if self.hermitian:
-            return self
-        raise NotImplementedError("adjoint of a non-Hermitian Pauli sum is not provided")
 
     def expectation(self, x: np.ndarray):
         """<x|A|x> (x not necessarily normalised), chunked so it does not depend on the thread count."""
