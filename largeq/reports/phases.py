@@ -9,10 +9,37 @@ __all__ = ["PhaseClock", "process_start_time"]
 
 
 def process_start_time() -> float:
-    """When this process started (seconds since the epoch): the start of a command's wall time."""
+    """When this process started (seconds since the epoch): the start of a command's wall time.
+
+    On Linux the process's age is read from ``/proc`` against the boot clock (both counted from boot, to
+    1/100 s), and subtracted from now. ``psutil.Process().create_time()`` adds the boot time, which the kernel
+    reports in whole seconds, so it can place the start up to a second late or early.
+    """
+    age = _process_age_from_proc()
+    if age is not None:
+        return time.time() - age
     import psutil
 
     return float(psutil.Process().create_time())
+
+
+def _process_age_from_proc() -> float | None:
+    """Seconds since this process started, from /proc/uptime and /proc/self/stat; None where unavailable."""
+    import os
+
+    try:
+        with open("/proc/self/stat") as f:
+            stat = f.read()
+        with open("/proc/uptime") as f:
+            uptime = float(f.read().split()[0])
+        # the command name (field 2) may hold spaces; the fields after its closing parenthesis start at field 3
+        fields = stat[stat.rindex(")") + 2:].split()
+        start_ticks = int(fields[19])  # field 22 of proc(5): starttime, in clock ticks since boot
+        ticks = os.sysconf("SC_CLK_TCK")
+    except (OSError, ValueError, IndexError):
+        return None
+    age = uptime - start_ticks / ticks
+    return age if age >= 0.0 else None
 
 
 class PhaseClock:
