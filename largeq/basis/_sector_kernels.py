@@ -272,40 +272,85 @@ def sym_expect(L, full, n_up, use_t, use_r, use_f, tphase, sr, sf, reps, nrm, mo
         partial[c] = s
 
 
-@njit(cache=True)
-def sym_coo(L, full, n_up, use_t, use_r, use_f, tphase, sr, sf, reps, nrm, mode, blk, n_lo, rank_tab, boff, lo_rank,
-            diag, gx, gptr, gz, gc, rows, cols, vals):
-    """Matrix entries (row, col, value) of the sector operator; returns how many were written."""
-    e = 0
-    for i in range(reps.shape[0]):
-        r = reps[i]
-        rows[e] = i
-        cols[e] = i
-        vals[e] = diag[i]
-        e += 1
-        for g in range(gx.shape[0]):
-            b = r ^ gx[g]
-            if n_up >= 0 and popcount(b) != n_up:
-                continue
-            c = gc[0] * 0
-            for q in range(gptr[g], gptr[g + 1]):
-                c += gc[q] * zsign(gz[q], b)
-            if c == 0:
-                continue
-            rb, j, f, p = find_rep(b, L, full, use_t, use_r, use_f)
-            idx = lookup(rb, mode, reps, blk, n_lo, rank_tab, boff, lo_rank)
-            if idx < 0:
-                continue
-            ch = tphase[j]
-            if p == 1:
-                ch = ch * sr
-            if f == 1:
-                ch = ch * sf
-            rows[e] = i
-            cols[e] = idx
-            vals[e] = (c * ch) * (nrm[idx] / nrm[i])
-            e += 1
-    return e
+@njit(inline="always", cache=True)
+def _row_unique(i, L, full, n_up, use_t, use_r, use_f, tphase, sr, sf, reps, nrm, mode, blk, n_lo, rank_tab, boff,
+                lo_rank, diag, gx, gptr, gz, gc, cols, vals):
+    """Row i of the sector operator into ``cols``/``vals`` (length >= n_groups + 1): sorted by column,
+    duplicates summed, exact zeros dropped (the diagonal is kept).  Returns the number of entries."""
+    r = reps[i]
+    cols[0] = i
+    vals[0] = diag[i]
+    m = 1
+    inv = 1.0 / nrm[i]
+    for g in range(gx.shape[0]):
+        b = r ^ gx[g]
+        if n_up >= 0 and popcount(b) != n_up:
+            continue
+        c = gc[0] * 0
+        for q in range(gptr[g], gptr[g + 1]):
+            c += gc[q] * zsign(gz[q], b)
+        if c == 0:
+            continue
+        rb, j, f, p = find_rep(b, L, full, use_t, use_r, use_f)
+        idx = lookup(rb, mode, reps, blk, n_lo, rank_tab, boff, lo_rank)
+        if idx < 0:
+            continue
+        ch = tphase[j]
+        if p == 1:
+            ch = ch * sr
+        if f == 1:
+            ch = ch * sf
+        v = (c * ch) * (nrm[idx] * inv)
+        # insertion into the sorted row (rows hold at most n_groups + 1 entries)
+        k = m
+        while k > 0 and cols[k - 1] > idx:
+            k -= 1
+        if k > 0 and cols[k - 1] == idx:
+            vals[k - 1] += v
+            continue
+        for q in range(m, k, -1):
+            cols[q] = cols[q - 1]
+            vals[q] = vals[q - 1]
+        cols[k] = idx
+        vals[k] = v
+        m += 1
+    # drop entries that cancelled exactly (keep the diagonal so every row has one entry)
+    w = 0
+    for q in range(m):
+        if vals[q] != 0 or cols[q] == i:
+            cols[w] = cols[q]
+            vals[w] = vals[q]
+            w += 1
+    return w
+
+
+@njit(parallel=True, cache=True)
+def sym_csr_counts(L, full, n_up, use_t, use_r, use_f, tphase, sr, sf, reps, nrm, mode, blk, n_lo, rank_tab, boff,
+                   lo_rank, diag, gx, gptr, gz, gc, bcols, bvals, counts):
+    """counts[i] <- entries of row i (first pass of the CSR assembly); ``bcols``/``bvals`` are per-chunk
+    scratch rows of shape (n_chunks, n_groups + 1)."""
+    n = reps.shape[0]
+    nc = bcols.shape[0]
+    for c in prange(nc):
+        for i in range(c * n // nc, (c + 1) * n // nc):
+            counts[i] = _row_unique(i, L, full, n_up, use_t, use_r, use_f, tphase, sr, sf, reps, nrm, mode, blk,
+                                    n_lo, rank_tab, boff, lo_rank, diag, gx, gptr, gz, gc, bcols[c], bvals[c])
+
+
+@njit(parallel=True, cache=True)
+def sym_csr_fill(L, full, n_up, use_t, use_r, use_f, tphase, sr, sf, reps, nrm, mode, blk, n_lo, rank_tab, boff,
+                 lo_rank, diag, gx, gptr, gz, gc, bcols, bvals, indptr, indices, data):
+    """Second pass: the rows into a CSR matrix whose ``indptr`` came from :func:`sym_csr_counts`."""
+    n = reps.shape[0]
+    nc = bcols.shape[0]
+    for c in prange(nc):
+        for i in range(c * n // nc, (c + 1) * n // nc):
+            m = _row_unique(i, L, full, n_up, use_t, use_r, use_f, tphase, sr, sf, reps, nrm, mode, blk, n_lo,
+                            rank_tab, boff, lo_rank, diag, gx, gptr, gz, gc, bcols[c], bvals[c])
+            e0 = indptr[i]
+            for q in range(m):
+                indices[e0 + q] = bcols[c, q]
+                data[e0 + q] = bvals[c, q]
 
 
 # --------------------------------------------------------------------------- states

@@ -368,9 +368,10 @@ def sector_memory(dims: list[int], *, real: bool, n_groups: int, block: int, ava
     """Memory of the sector path: (store the sector matrices?, parts in bytes with 'total').
 
     Stored sector matrix: about one entry per state for every other off-diagonal group (flip-flop terms
-    vanish on parallel spins) plus the diagonal; 12 bytes per real entry, 20 per complex one.  Assembling one
-    sector's matrix: COO arrays sized for every group, then the CSR copy (measured ~1.35x).  Sectors are
-    assembled one after the other, before the evolution allocates its vectors.
+    vanish on parallel spins) plus the diagonal; 12 bytes per real entry, 20 per complex one.  A sector's
+    matrix is assembled in place in two passes over its rows (count, then fill): the extra memory is one
+    8-byte count per row, freed before the entries are allocated.  Sectors are assembled one after the
+    other, before the evolution allocates its vectors.
 
     Observables across sectors (``off_diagonal``: one flag per observable, True when it is off-diagonal in
     the z basis) are stored as CSR blocks, one per sector pair with the rows of the first sector, when the
@@ -381,9 +382,9 @@ def sector_memory(dims: list[int], *, real: bool, n_groups: int, block: int, ava
     vec = 16 * sum(dims)
     stored = sum(d * (n_groups / 2 + 1) * (12 if real else 20) + 8 * d for d in dims)
     largest = max(dims)
-    build = 1.35 * largest * (n_groups + 1) * (24 if real else 32)
+    build = 8 * largest
     vectors = (4 + 2 * block) * vec
-    stored_peak = max(stored * (1 - largest / sum(dims)) + build, stored + vectors)
+    stored_peak = stored + max(build, vectors)
     store = stored_peak <= 0.8 * available
     rows = (len(dims) + 1) / 2 * sum(dims)
     obs = sum(rows * ((n_sites / 2 + 1) if off else 1) * (12 if real else 20) for off in off_diagonal)

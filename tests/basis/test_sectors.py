@@ -206,6 +206,13 @@ def test_sector_operator_is_projected_hamiltonian(L, n_up, m, r, f):
     assert (op.dtype == np.float64) == (2 * m % L == 0)
     st = op.stored()
     np.testing.assert_allclose(st @ x, op @ x, atol=1e-12)
+    # the two-pass assembly: every row sorted, no repeated column, no stored zero off the diagonal
+    indptr, indices, data = op.csr_arrays()
+    assert indices.dtype == np.int32 and indptr[-1] == indices.size == data.size
+    for i in range(sec.dim):
+        row = indices[indptr[i]:indptr[i + 1]]
+        assert np.all(np.diff(row) > 0) and i in row
+        assert np.all((data[indptr[i]:indptr[i + 1]] != 0) | (row == i))
 
 
 @pytest.mark.parametrize("lookup", ["bisect", "block", "rank"])
