@@ -216,6 +216,33 @@ def diag_values(reps, dz, dc, out):
 
 
 @njit(inline="always", cache=True)
+def _entry(r, g, L, full, n_up, use_t, use_r, use_f, tphase, sr, sf, reps, mode, blk, n_lo, rank_tab, boff, lo_rank,
+           gx, gptr, gz, gc):
+    """The entry of flip group g in the row of representative r: (column, <r|A|b> chi(g')) with b = r ^ x_mask
+    and g' b its representative; column -1 when b leaves the sector or the strings cancel.  The caller
+    multiplies by the norm ratio sqrt(|S_r(b)| / |S_r|)."""
+    zero = gc[0] * tphase[0] * 0
+    b = r ^ gx[g]
+    if n_up >= 0 and popcount(b) != n_up:
+        return -1, zero
+    c = gc[0] * 0
+    for q in range(gptr[g], gptr[g + 1]):
+        c += gc[q] * zsign(gz[q], b)
+    if c == 0:
+        return -1, zero
+    rb, j, f, p = find_rep(b, L, full, use_t, use_r, use_f)
+    idx = lookup(rb, mode, reps, blk, n_lo, rank_tab, boff, lo_rank)
+    if idx < 0:
+        return -1, zero
+    ch = tphase[j]
+    if p == 1:
+        ch = ch * sr
+    if f == 1:
+        ch = ch * sf
+    return idx, c * ch
+
+
+@njit(inline="always", cache=True)
 def _row(i, L, full, n_up, use_t, use_r, use_f, tphase, sr, sf, reps, nrm, mode, blk, n_lo, rank_tab, boff, lo_rank,
          diag, gx, gptr, gz, gc, x):
     """(A x)_i = sum_b <r_i|A|b> chi(g') sqrt(|S_r(b)| / |S_r_i|) x[idx(r(b))], b = r_i ^ x_mask."""
@@ -223,24 +250,10 @@ def _row(i, L, full, n_up, use_t, use_r, use_f, tphase, sr, sf, reps, nrm, mode,
     acc = diag[i] * x[i]
     inv = 1.0 / nrm[i]
     for g in range(gx.shape[0]):
-        b = r ^ gx[g]
-        if n_up >= 0 and popcount(b) != n_up:
-            continue
-        c = gc[0] * 0
-        for q in range(gptr[g], gptr[g + 1]):
-            c += gc[q] * zsign(gz[q], b)
-        if c == 0:
-            continue
-        rb, j, f, p = find_rep(b, L, full, use_t, use_r, use_f)
-        idx = lookup(rb, mode, reps, blk, n_lo, rank_tab, boff, lo_rank)
-        if idx < 0:
-            continue
-        ch = tphase[j]
-        if p == 1:
-            ch = ch * sr
-        if f == 1:
-            ch = ch * sf
-        acc += (c * ch) * (nrm[idx] * inv) * x[idx]
+        idx, v = _entry(r, g, L, full, n_up, use_t, use_r, use_f, tphase, sr, sf, reps, mode, blk, n_lo, rank_tab,
+                        boff, lo_rank, gx, gptr, gz, gc)
+        if idx >= 0:
+            acc += v * (nrm[idx] * inv) * x[idx]
     return acc
 
 
@@ -283,24 +296,11 @@ def _row_unique(i, L, full, n_up, use_t, use_r, use_f, tphase, sr, sf, reps, nrm
     m = 1
     inv = 1.0 / nrm[i]
     for g in range(gx.shape[0]):
-        b = r ^ gx[g]
-        if n_up >= 0 and popcount(b) != n_up:
-            continue
-        c = gc[0] * 0
-        for q in range(gptr[g], gptr[g + 1]):
-            c += gc[q] * zsign(gz[q], b)
-        if c == 0:
-            continue
-        rb, j, f, p = find_rep(b, L, full, use_t, use_r, use_f)
-        idx = lookup(rb, mode, reps, blk, n_lo, rank_tab, boff, lo_rank)
+        idx, v0 = _entry(r, g, L, full, n_up, use_t, use_r, use_f, tphase, sr, sf, reps, mode, blk, n_lo, rank_tab,
+                         boff, lo_rank, gx, gptr, gz, gc)
         if idx < 0:
             continue
-        ch = tphase[j]
-        if p == 1:
-            ch = ch * sr
-        if f == 1:
-            ch = ch * sf
-        v = (c * ch) * (nrm[idx] * inv)
+        v = v0 * (nrm[idx] * inv)
         # insertion into the sorted row (rows hold at most n_groups + 1 entries)
         k = m
         while k > 0 and cols[k - 1] > idx:
@@ -324,25 +324,61 @@ def _row_unique(i, L, full, n_up, use_t, use_r, use_f, tphase, sr, sf, reps, nrm
     return w
 
 
+@njit(inline="always", cache=True)
+def _collect_value(tab, nt, v):
+    """Insert v into the sorted ``tab[:nt]`` unless present; returns the new count, or -1 when ``tab`` is full."""
+    lo = 0
+    hi = nt
+    while lo < hi:
+        mid = (lo + hi) >> 1
+        if tab[mid] < v:
+            lo = mid + 1
+        else:
+            hi = mid
+    if lo < nt and tab[lo] == v:
+        return nt
+    if nt == tab.shape[0]:
+        return -1
+    for q in range(nt, lo, -1):
+        tab[q] = tab[q - 1]
+    tab[lo] = v
+    return nt + 1
+
+
 @njit(parallel=True, cache=True)
 def sym_csr_counts(L, full, n_up, use_t, use_r, use_f, tphase, sr, sf, reps, nrm, mode, blk, n_lo, rank_tab, boff,
-                   lo_rank, diag, gx, gptr, gz, gc, bcols, bvals, counts):
+                   lo_rank, diag, gx, gptr, gz, gc, bcols, bvals, counts, tabs, ntabs):
     """counts[i] <- entries of row i (first pass of the CSR assembly); ``bcols``/``bvals`` are per-chunk
-    scratch rows of shape (n_chunks, n_groups + 1)."""
+    scratch rows of shape (n_chunks, n_groups + 1).  With ``tabs`` of shape (n_chunks, K) (real entries only)
+    each chunk also gathers its distinct values, sorted, into ``tabs[c, :ntabs[c]]`` (ntabs[c] = -1: more
+    than K); pass ``tabs`` with K = 0 to skip."""
     n = reps.shape[0]
     nc = bcols.shape[0]
+    collect = tabs.shape[1] > 0
     for c in prange(nc):
+        nt = 0
         for i in range(c * n // nc, (c + 1) * n // nc):
-            counts[i] = _row_unique(i, L, full, n_up, use_t, use_r, use_f, tphase, sr, sf, reps, nrm, mode, blk,
-                                    n_lo, rank_tab, boff, lo_rank, diag, gx, gptr, gz, gc, bcols[c], bvals[c])
+            m = _row_unique(i, L, full, n_up, use_t, use_r, use_f, tphase, sr, sf, reps, nrm, mode, blk,
+                            n_lo, rank_tab, boff, lo_rank, diag, gx, gptr, gz, gc, bcols[c], bvals[c])
+            counts[i] = m
+            if collect and nt >= 0:
+                for q in range(m):
+                    nt = _collect_value(tabs[c], nt, bvals[c, q].real)
+                    if nt < 0:
+                        break
+        if collect:
+            ntabs[c] = nt
 
 
 @njit(parallel=True, cache=True)
 def sym_csr_fill(L, full, n_up, use_t, use_r, use_f, tphase, sr, sf, reps, nrm, mode, blk, n_lo, rank_tab, boff,
-                 lo_rank, diag, gx, gptr, gz, gc, bcols, bvals, indptr, indices, data):
-    """Second pass: the rows into a CSR matrix whose ``indptr`` came from :func:`sym_csr_counts`."""
+                 lo_rank, diag, gx, gptr, gz, gc, bcols, bvals, indptr, indices, data, table, codes):
+    """Second pass: the rows into a CSR matrix whose ``indptr`` came from :func:`sym_csr_counts`.  With an
+    empty ``table`` the values go to ``data``; otherwise each value is stored as its position in the sorted
+    ``table`` (``codes``, uint8 or uint16) and ``data`` is not touched."""
     n = reps.shape[0]
     nc = bcols.shape[0]
+    nt = table.shape[0]
     for c in prange(nc):
         for i in range(c * n // nc, (c + 1) * n // nc):
             m = _row_unique(i, L, full, n_up, use_t, use_r, use_f, tphase, sr, sf, reps, nrm, mode, blk, n_lo,
@@ -350,7 +386,19 @@ def sym_csr_fill(L, full, n_up, use_t, use_r, use_f, tphase, sr, sf, reps, nrm, 
             e0 = indptr[i]
             for q in range(m):
                 indices[e0 + q] = bcols[c, q]
-                data[e0 + q] = bvals[c, q]
+                if nt == 0:
+                    data[e0 + q] = bvals[c, q]
+                else:
+                    v = bvals[c, q].real
+                    lo = 0
+                    hi = nt
+                    while lo < hi:
+                        mid = (lo + hi) >> 1
+                        if table[mid] < v:
+                            lo = mid + 1
+                        else:
+                            hi = mid
+                    codes[e0 + q] = lo
 
 
 # --------------------------------------------------------------------------- states
@@ -473,6 +521,20 @@ def csr_fused(indptr, indices, data, x, y, alpha, beta, gamma):
         acc = data[0] * x[0] * 0
         for e in range(indptr[i], indptr[i + 1]):
             acc += data[e] * x[indices[e]]
+        if gamma == 0:
+            y[i] = alpha * acc + beta * x[i]
+        else:
+            y[i] = alpha * acc + beta * x[i] + gamma * y[i]
+
+
+@njit(parallel=True, cache=True)
+def csr_coded_fused(indptr, indices, codes, table, x, y, alpha, beta, gamma):
+    """y <- alpha (M x) + beta x + gamma y for a CSR matrix whose values are ``table[codes]`` (a few hundred
+    distinct real values: 2 bytes an entry instead of 8, so less memory traffic per product)."""
+    for i in prange(indptr.shape[0] - 1):
+        acc = table[0] * x[0] * 0
+        for e in range(indptr[i], indptr[i + 1]):
+            acc += table[codes[e]] * x[indices[e]]
         if gamma == 0:
             y[i] = alpha * acc + beta * x[i]
         else:

@@ -31,9 +31,9 @@ from largeq.model.pauli import PauliSum
 from largeq.basis.sectors import GroupSpec, SymmetricSector, orbit_representatives, symmetric_sector
 from largeq.operators.vectors import threads_for, vdot
 
-__all__ = ["SymmetricOperator", "StoredSectorMatrix", "is_invariant", "split_basis_state", "SectorComponent", "CrossSectorDiagonal",
+__all__ = ["SymmetricOperator", "StoredSectorMatrix", "SectorCSR", "is_invariant", "split_basis_state", "SectorComponent", "CrossSectorDiagonal",
            "split_product_state", "product_sector_weights", "choose_sectors", "sector_dimensions", "CrossSectorObservables", "covariant_part",
-           "sector_observables", "split_start", "stabiliser_average", "expand_to_magnetization", "project_from_magnetization"]
+           "sector_observables", "split_start", "stabiliser_average", "observables_for_start", "expand_to_magnetization", "project_from_magnetization"]
 
 
 # --------------------------------------------------------------------------- invariance
@@ -132,38 +132,60 @@ class SymmetricOperator(FusedOperator):
         n = self.shape[0]
         if n > max_dim:
             raise MemoryError(f"to_csr: dimension {n:,} exceeds max_dim = {max_dim:,}")
-        indptr, indices, data = self.csr_arrays()
-        return sp.csr_matrix((data, indices.astype(np.int64), indptr), shape=self.shape)
+        return self.assemble(coded=False).to_scipy()
 
-    def csr_arrays(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """(indptr int64, indices int32, data) of the operator's matrix, assembled in two parallel passes over
-        the rows (count, then fill): the peak is the finished matrix plus one count per row, with no COO
-        copy and no conversion."""
+    def assemble(self, *, coded: bool = True, max_values: int = 65536) -> "SectorCSR":
+        """The operator's matrix, assembled in two parallel passes over the rows (count, then fill): the peak
+        is the finished matrix plus one count per row, with no COO copy and no conversion.
+
+        With ``coded`` (real sectors only) the first pass also gathers the distinct values; when there are at
+        most ``max_values`` of them (a few hundred for the built-in chains: couplings x characters x orbit-size
+        ratios, plus the diagonal's bond counts) each entry stores its value's position in that table, one or
+        two bytes instead of eight.
+        """
         n = self.shape[0]
         if n >= 2**31 - 1:
-            raise MemoryError(f"csr_arrays: dimension {n:,} needs 64-bit column indices")
+            raise MemoryError(f"assemble: dimension {n:,} needs 64-bit column indices")
         width = self._groups[0].size + 1
-        nc = int(min(max(n, 1), 4096))
+        nc = int(min(max(n, 1), 1024))
         bcols = np.empty((nc, width), np.int64)
         bvals = np.empty((nc, width), self.coeff_dtype)
+        coded = bool(coded) and self.coeff_dtype == np.float64
+        per_chunk = int(min(max_values, 4096)) if coded else 0
+        tabs = np.empty((nc, per_chunk), np.float64)
+        ntabs = np.zeros(nc, np.int64)
         counts = np.zeros(n, np.int64)
         indptr = np.zeros(n + 1, np.int64)
         if n:
             with threads_for(n):
-                sk.sym_csr_counts(*self._args(), bcols, bvals, counts)
+                sk.sym_csr_counts(*self._args(), bcols, bvals, counts, tabs, ntabs)
             np.cumsum(counts, out=indptr[1:])
         del counts
+        table = np.zeros(0, np.float64)
+        if coded and n and np.all(ntabs >= 0):
+            table = np.unique(np.concatenate([tabs[c, :ntabs[c]] for c in range(nc)]))
+            if table.size > max_values:
+                table = np.zeros(0, np.float64)
+        del tabs
         nnz = int(indptr[-1])
         indices = np.empty(nnz, np.int32)
-        data = np.empty(nnz, self.coeff_dtype)
+        if table.size:
+            codes = np.empty(nnz, np.uint8 if table.size <= 256 else np.uint16)
+            data = np.zeros(1, self.coeff_dtype)
+        else:
+            codes = np.zeros(1, np.uint16)
+            data = np.empty(nnz, self.coeff_dtype)
         if n:
             with threads_for(n):
-                sk.sym_csr_fill(*self._args(), bcols, bvals, indptr, indices, data)
-        return indptr, indices, data
+                sk.sym_csr_fill(*self._args(), bcols, bvals, indptr, indices, data, table, codes)
+        if table.size:
+            return SectorCSR(self.shape, indptr, indices, None, codes, table)
+        return SectorCSR(self.shape, indptr, indices, data, None, None)
 
-    def stored(self) -> "StoredSectorMatrix":
-        """The same operator with its matrix stored (CSR, int32 columns): faster products, nnz x 12-24 bytes."""
-        return StoredSectorMatrix(self)
+    def stored(self, *, coded: bool = True) -> "StoredSectorMatrix":
+        """The same operator with its matrix stored (CSR, int32 columns; values coded in one or two bytes
+        where the sector is real, see :meth:`assemble`): faster products for nnz x 5-20 bytes."""
+        return StoredSectorMatrix(self, coded=coded)
 
     def to_dense(self, max_dim: int = 20_000) -> np.ndarray:
         if self.shape[0] > max_dim:
@@ -176,12 +198,12 @@ class StoredSectorMatrix(SymmetricOperator):
     matrix-free kernel).  Trades memory (about (n_groups / 2 + 1) x dim entries, 12 bytes each for real sectors
     and 20 for complex ones) for speed: the orbit scans and lookups are done once instead of at every product."""
 
-    def __init__(self, op: SymmetricOperator):
+    def __init__(self, op: SymmetricOperator, *, coded: bool = True):
         self.__dict__.update(op.__dict__)
-        self._csr = op.csr_arrays()
+        self.matrix = op.assemble(coded=coded)
 
     def table_bytes(self) -> int:
-        return super().table_bytes() + int(sum(a.nbytes for a in self._csr))
+        return super().table_bytes() + self.matrix.nbytes
 
     def expectation(self, x: np.ndarray):
         """<x|A|x> through the stored matrix (one temporary vector; the matrix-free path rescans orbits)."""
@@ -198,8 +220,43 @@ class StoredSectorMatrix(SymmetricOperator):
         x, scal = fused_arguments(n, self.coeff_dtype, x, y, alpha, beta, gamma)
         if n:
             with threads_for(n):
-                sk.csr_fused(*self._csr, x, y, *scal)
+                self.matrix.fused(x, y, *scal)
         return y
+
+
+class SectorCSR:
+    """A stored sector matrix: CSR with int32 columns and either plain values (``data``) or one- or two-byte
+    positions (``codes``) in a sorted table of its distinct real values (``table``)."""
+
+    def __init__(self, shape, indptr, indices, data, codes, table):
+        self.shape = tuple(shape)
+        self.indptr, self.indices, self.data, self.codes, self.table = indptr, indices, data, codes, table
+
+    @property
+    def coded(self) -> bool:
+        return self.codes is not None
+
+    @property
+    def nnz(self) -> int:
+        return int(self.indptr[-1])
+
+    @property
+    def nbytes(self) -> int:
+        parts = (self.indptr, self.indices, self.data, self.codes, self.table)
+        return int(sum(a.nbytes for a in parts if a is not None))
+
+    def values(self) -> np.ndarray:
+        return self.table[self.codes] if self.coded else self.data
+
+    def fused(self, x, y, alpha, beta, gamma) -> None:
+        """y <- alpha (M x) + beta x + gamma y (arguments already checked by the caller)."""
+        if self.coded:
+            sk.csr_coded_fused(self.indptr, self.indices, self.codes, self.table, x, y, alpha, beta, gamma)
+        else:
+            sk.csr_fused(self.indptr, self.indices, self.data, x, y, alpha, beta, gamma)
+
+    def to_scipy(self) -> sp.csr_matrix:
+        return sp.csr_matrix((self.values(), self.indices.astype(np.int64), self.indptr), shape=self.shape)
 
 
 # --------------------------------------------------------------------------- states
@@ -674,6 +731,8 @@ class CrossSectorObservables:
             self._col.append((s.group.kernel_up, np.ascontiguousarray(tphase, np.complex128), sr, sf, reps, nrm,
                               mode, blk, n_lo, rank_tab, boff, lo_rank))
         self.pairs: dict[str, list] = {}
+        self._invariant_parts: dict[tuple, PauliSum] = {}
+        self.direct: dict[tuple, SymmetricOperator] = {}
         self.n_strings = 0
         for name, A in observables.items():
             A = A.simplify()
@@ -685,6 +744,13 @@ class CrossSectorObservables:
                     B = covariant_part(A, elements, chis[a], chis[b])
                     if len(B) == 0:
                         continue
+                    if a == b and all(is_invariant(B, sectors[a].group).values()):
+                        if B.is_diagonal():
+                            # a diagonal invariant block is the sector operator's diagonal: one number per
+                            # state, no orbit scan per evaluation
+                            self.direct[(name, a)] = SymmetricOperator(B, sectors[a], check=False)
+                        elif store:
+                            self._invariant_parts[(name, a)] = B
                     na, nb = sectors[a].up_spins, sectors[b].up_spins
                     groups = {}
                     for x, (zz, cc) in B.groups().items():
@@ -708,7 +774,13 @@ class CrossSectorObservables:
         if store:
             for name, lst in self.pairs.items():
                 for a, b, gx, gptr, gz, gc in lst:
-                    self.stored[(name, a, b)] = self._block(a, b, gx, gptr, gz, gc)
+                    invariant = self._invariant_parts.get((name, a)) if a == b else None
+                    if invariant is not None:
+                        # B_aa invariant under the group: the sector operator of B_aa (two-pass assembly,
+                        # coded values) instead of a scipy CSR built from COO entries
+                        self.stored[(name, a, b)] = SymmetricOperator(invariant, self.sectors[a], check=False).stored()
+                    else:
+                        self.stored[(name, a, b)] = self._block(a, b, gx, gptr, gz, gc)
 
     def _block(self, a, b, gx, gptr, gz, gc) -> sp.csr_matrix:
         """The block of B_ab (rows: sector a, columns: sector b) as CSR, real when its entries are."""
@@ -729,11 +801,17 @@ class CrossSectorObservables:
         return m
 
     def table_bytes(self) -> int:
-        st = sum(m.data.nbytes + m.indices.nbytes + m.indptr.nbytes for m in self.stored.values())
+        st = sum(m.table_bytes() - m.sector.table_bytes() if isinstance(m, StoredSectorMatrix)
+                 else m.data.nbytes + m.indices.nbytes + m.indptr.nbytes for m in self.stored.values())
+        st += sum(op.table_bytes() - op.sector.table_bytes() for op in self.direct.values())
         return int(sum(v.nbytes for v in self._nrm) + 24 * self.n_strings + st)
 
     def pair_value(self, a: int, b: int, gx, gptr, gz, gc, vecs, name=None) -> complex:
+        if a == b and (name, a) in self.direct:
+            return complex(self.direct[(name, a)].expectation(vecs[a]))
         m = self.stored.get((name, a, b))
+        if isinstance(m, StoredSectorMatrix):
+            return complex(m.expectation(vecs[a]))
         if m is not None:
             return complex(vdot(vecs[a], m @ vecs[b]))
         sa = self.sectors[a]
@@ -807,6 +885,29 @@ def stabiliser_average(obs: PauliSum, bits: int, group: GroupSpec) -> tuple[Paul
     avg = (avg * (1.0 / len(terms))).simplify()
     differs = not msym.same_operator(avg, obs)
     return avg, differs
+
+
+def observables_for_start(observables: dict[str, PauliSum], bits: int, group: GroupSpec
+                          ) -> tuple[dict[str, PauliSum], dict[str, str]]:
+    """The observables a sector run evaluates for the z-basis start |bits>: each replaced by its
+    :func:`stabiliser_average` where that differs (the same curve for this start, usually with fewer
+    sector pairs and smaller stored blocks: a single bond of the Néel state becomes the mean bond, which
+    no longer couples momentum 0 to momentum pi).  Returns (observables, {name: note} for those replaced)."""
+    used, notes = {}, {}
+    for name, a in observables.items():
+        avg, differs = stabiliser_average(a, int(bits), group)
+        used[name] = avg if differs else a
+        if differs:
+            notes[name] = (f"evaluated as its average over the {group_stabiliser_size(int(bits), group)} symmetry "
+                           f"operations that leave the initial state unchanged ({len(avg)} Pauli strings): the "
+                           f"same curve for this start and a symmetric H")
+    return used, notes
+
+
+def group_stabiliser_size(bits: int, group: GroupSpec) -> int:
+    """How many elements of the group fix the basis state |bits>."""
+    L = group.n_sites
+    return sum(1 for g in group.abstract().elements if int(msym.apply_bits(g, bits, L)) == bits)
 
 
 # --------------------------------------------------------------------------- starts

@@ -364,11 +364,12 @@ def count_state_sectors(bits: int, n_sites: int, *, reflection: bool, spin_flip:
 
 
 def sector_memory(dims: list[int], *, real: bool, n_groups: int, block: int, available: int, n_sites: int = 0,
-                  off_diagonal: tuple = ()) -> tuple[bool, dict]:
+                  off_diagonal: tuple = (), invariant: tuple = ()) -> tuple[bool, dict]:
     """Memory of the sector path: (store the sector matrices?, parts in bytes with 'total').
 
     Stored sector matrix: about one entry per state for every other off-diagonal group (flip-flop terms
-    vanish on parallel spins) plus the diagonal; 12 bytes per real entry, 20 per complex one.  A sector's
+    vanish on parallel spins) plus the diagonal; 6 bytes per real entry (int32 column, uint16 code into
+    the table of distinct values), 20 per complex one (int32 column, complex128 value).  A sector's
     matrix is assembled in place in two passes over its rows (count, then fill): the extra memory is one
     8-byte count per row, freed before the entries are allocated.  Sectors are assembled one after the
     other, before the evolution allocates its vectors.
@@ -376,19 +377,29 @@ def sector_memory(dims: list[int], *, real: bool, n_groups: int, block: int, ava
     Observables across sectors (``off_diagonal``: one flag per observable, True when it is off-diagonal in
     the z basis) are stored as CSR blocks, one per sector pair with the rows of the first sector, when the
     sector matrices are stored and the blocks fit as well: about L/2 + 1 entries per row for an off-diagonal
-    local term summed over its translates, one for a diagonal one.  ``parts['stored_observables']`` holds
-    their bytes (0: evaluated matrix-free).
+    local term summed over its translates, one for a diagonal one.  An observable invariant under the
+    group (``invariant``, one flag per observable: e.g. a single bond averaged over the start's
+    stabiliser) has only the diagonal blocks, one per sector, coded like the sector matrices; any other
+    has a block for every pair of sectors.  ``parts['stored_observables']`` holds their bytes
+    (0: evaluated matrix-free).
     """
     vec = 16 * sum(dims)
-    stored = sum(d * (n_groups / 2 + 1) * (12 if real else 20) + 8 * d for d in dims)
+    entry = 6 if real else 20
+    stored = sum(d * (n_groups / 2 + 1) * entry + 8 * d for d in dims)
     largest = max(dims)
     build = 8 * largest
     vectors = (4 + 2 * block) * vec
     stored_peak = stored + max(build, vectors)
     store = stored_peak <= 0.8 * available
-    rows = (len(dims) + 1) / 2 * sum(dims)
-    obs = sum(rows * ((n_sites / 2 + 1) if off else 1) * (12 if real else 20) for off in off_diagonal)
-    store_obs = bool(off_diagonal) and store and stored_peak + obs <= 0.8 * available
+    pairs = (len(dims) + 1) / 2 * sum(dims)
+    invariant = tuple(invariant) + (False,) * (len(off_diagonal) - len(invariant))
+    # a diagonal invariant observable is kept as one 8-byte number per state whether or not blocks are stored
+    always = sum(8 * sum(dims) for off, inv in zip(off_diagonal, invariant) if inv and not off)
+    obs = sum(sum(dims) * (entry * (n_sites / 2 + 1) + 8) if inv else pairs * (12 if real else 20) * (
+        (n_sites / 2 + 1) if off else 1) for off, inv in zip(off_diagonal, invariant) if off or not inv)
+    stored_peak += always
+    vectors += always
+    store_obs = bool(obs) and store and stored_peak + obs <= 0.8 * available
     if store_obs:
         stored_peak += obs
     total = int((stored_peak if store else vectors) + OVERHEAD_BYTES)
@@ -445,6 +456,22 @@ def sector_decision(*, symmetry: str, method: str, symmetries: dict, start, basi
                                     f"sector(s) of dimensions {shown} = {total:,} (instead of {plain:,}); "
                                     f"{choice['note']}"))
     return choice
+
+
+def _evaluated_observables(observables: dict, start, choice: dict, L: int, up: int | None) -> list[tuple]:
+    """(Pauli sum the sector run evaluates, invariant under the group?) per observable, as ``relax``
+    chooses them (``observables_for_start`` for a z-basis start)."""
+    from largeq.basis.sectors import GroupSpec
+    from largeq.operators.sector_operator import is_invariant, observables_for_start
+
+    g = choice["group"]
+    group = GroupSpec(L, up if choice["conserve_magnetization"] else None, translation=True,
+                      reflection=bool(g["reflection"]),
+                      spin_flip=bool(g["spin_flip"]) and up is not None and 2 * up == L)
+    paulis = {n: o.pauli for n, o in observables.items()}
+    if start.bits is not None:
+        paulis, _ = observables_for_start(paulis, start.bits, group)
+    return [(a, all(is_invariant(a, group).values())) for a in paulis.values()]
 
 
 def _sector_count(L: int, sec: dict) -> SectorCount:
@@ -563,10 +590,20 @@ def plan_run(scenario, *, symmetry: str = "auto", block: int | None = None, avai
         comps = [_sector_count(L, sec) for sec in choice["sectors"]]
         note = choice["note"]
         dims = [c.dimension for c in comps]
-        blk = block or 8
-        store, mem = sector_memory(dims, real=all(c.real for c in comps), n_groups=len(H.groups()), block=blk,
-                                   available=avail, n_sites=L,
-                                   off_diagonal=tuple(not o.pauli.is_diagonal() for o in observables.values()))
+        evaluated = _evaluated_observables(observables, start, choice, L, up)
+        common = dict(real=all(c.real for c in comps), n_groups=len(H.groups()), available=avail, n_sites=L,
+                      off_diagonal=tuple(not a.is_diagonal() for a, _ in evaluated),
+                      invariant=tuple(inv for _, inv in evaluated))
+        # output times per expansion: the largest of 8, 4, 2, 1 with which the sector matrices stay stored
+        # (stored products are ~10x faster than the orbit scans); 8 when none does
+        blk = block
+        if blk is None:
+            # prefer stored observable blocks as well: matrix-free, each output time costs orbit scans
+            fits = [(k, *sector_memory(dims, block=k, **common)) for k in (8, 4, 2, 1)]
+            blk = next((k for k, st, m in fits if st and (m["stored_observables"] or not any(
+                off or not inv for off, inv in zip(common["off_diagonal"], common["invariant"])))),
+                next((k for k, st, _ in fits if st), 8))
+        store, mem = sector_memory(dims, block=blk, **common)
         store_obs = bool(mem["stored_observables"])
         mem["tables"] = tables
         total = mem["total"] + tables

@@ -253,6 +253,18 @@ def sector_plan(problem: Problem, plan) -> dict:
             "reason": plan.reason, "store_observables": plan.store_observables}
 
 
+def sector_run_observables(problem: Problem, comps) -> tuple[dict, dict]:
+    """The Pauli sums a sector run evaluates: for a z-basis start each observable's average over the
+    symmetry operations that fix the start (the same curve, fewer and smaller sector blocks; see
+    ``observables_for_start``), with a note for each one replaced."""
+    from largeq.operators.sector_operator import observables_for_start
+
+    obs = {n: o.pauli for n, o in problem.observables.items()}
+    if problem.start.bits is None or not comps:
+        return obs, {}
+    return observables_for_start(obs, problem.start.bits, comps[0].sector.group)
+
+
 def run_relaxation(scenario: Scenario, folder=None, options: RelaxOptions = RelaxOptions(), *,
                    overwrite: bool = False) -> RelaxRun:
     """Run the relaxation job of ``scenario`` into a run folder (new, or ``folder``).
@@ -394,7 +406,7 @@ class _SectorRecorder(_Recorder):
 def _execute_sectors(problem: Problem, text: str, folder: Path, times, plan, options, *, resume: bool,
                      clock: PhaseClock) -> RelaxRun:
     """The relaxation run with the state split over symmetry sectors, each evolved on its own."""
-    from largeq.operators.sector_operator import SymmetricOperator, sector_observables
+    from largeq.operators.sector_operator import SymmetricOperator, observables_for_start, sector_observables
 
     scenario = problem.scenario
     fp = fingerprint(text)
@@ -405,8 +417,8 @@ def _execute_sectors(problem: Problem, text: str, folder: Path, times, plan, opt
         ops = [SymmetricOperator(problem.hamiltonian, c.sector) for c in comps]
         if plan["store"]:
             ops = [op.stored() for op in ops]
-        cross = sector_observables([c.sector for c in comps], {n: o.pauli for n, o in problem.observables.items()},
-                                   store=plan.get("store_observables", False))
+        evaluated, equivalent = sector_run_observables(problem, comps)
+        cross = sector_observables([c.sector for c in comps], evaluated, store=plan.get("store_observables", False))
     psi_start = [np.ascontiguousarray(c.vector, dtype=np.complex128) for c in comps]
     rec = _SectorRecorder(problem, ops, cross, psi_start, len(times))
     states = [v.copy() for v in psi_start]
@@ -451,6 +463,7 @@ def _execute_sectors(problem: Problem, text: str, folder: Path, times, plan, opt
     stats = progress
     sector_info = {"note": plan["note"], "reason": plan["reason"], "stored_matrices": plan["store"],
                    "stored_observables": plan.get("store_observables", False),
+                   "observables_by_stabiliser_average": equivalent,
                    "sectors": [{"label": c.sector.label, "key": list(c.sector.full_key), "dimension": int(c.sector.dim),
                                 "weight": float(c.weight)}
                                for c in comps]}

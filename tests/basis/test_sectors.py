@@ -207,8 +207,15 @@ def test_sector_operator_is_projected_hamiltonian(L, n_up, m, r, f):
     st = op.stored()
     np.testing.assert_allclose(st @ x, op @ x, atol=1e-12)
     # the two-pass assembly: every row sorted, no repeated column, no stored zero off the diagonal
-    indptr, indices, data = op.csr_arrays()
+    plain = op.assemble(coded=False)
+    indptr, indices, data = plain.indptr, plain.indices, plain.data
     assert indices.dtype == np.int32 and indptr[-1] == indices.size == data.size
+    # coded values (real sectors): the same matrix, one or two bytes an entry
+    coded = op.assemble(coded=True)
+    assert coded.coded == (op.dtype == np.float64)
+    np.testing.assert_array_equal(coded.indices, indices)
+    np.testing.assert_array_equal(coded.values(), data)
+    np.testing.assert_allclose(op.stored(coded=True) @ x, op @ x, atol=1e-12)
     for i in range(sec.dim):
         row = indices[indptr[i]:indptr[i + 1]]
         assert np.all(np.diff(row) > 0) and i in row
@@ -566,3 +573,31 @@ def test_offdiagonal_and_tilted_relaxation_large(L, model):
         ref = _plain_curves(H, fb, psi, times, obs, 1e-13)
     for k in obs:
         np.testing.assert_allclose(res["curves"][k], ref[k], atol=1e-10, rtol=0)
+
+
+def test_stabiliser_averaged_observables_give_the_same_curves():
+    """A sector run evaluates each observable's average over the symmetry operations fixing the Néel start
+    (``observables_for_start``): the curves equal the magnetization-sector evolution of the observables
+    themselves (reference: PauliOperator products on the n_up basis, independent of the sector code), and the
+    averaged single bond no longer couples k = 0 to k = pi (fewer sector pairs, smaller stored blocks)."""
+    from largeq.operators.sector_operator import (CrossSectorObservables, StoredSectorMatrix, is_invariant,
+                                                  observables_for_start, split_start)
+
+    L = 12
+    H = ring(L)
+    obs = {k: v for k, v in _offdiag_observables(L).items() if k in ("bond01", "xxyy_02", "z0", "stag", "xy_14")}
+    comps, _ = split_start(H, neel(L), reflection=True, spin_flip=True)
+    used, notes = observables_for_start(obs, neel(L), comps[0].sector.group)
+    assert "bond01" in notes and "stabiliser" not in notes["bond01"]
+    times = np.linspace(0.0, 2.0, 5)
+    res = evolve_split(H, neel(L), times, used, reflection=True, spin_flip=True, tol=1e-13)
+    b = magnetization_basis(L, L // 2)
+    ref = _plain_curves(H, b, basis_state(b, neel(L)), times, obs, 1e-13)
+    for k in obs:
+        np.testing.assert_allclose(res["curves"][k], ref[k], atol=1e-10, rtol=0)
+    group = comps[0].sector.group
+    assert not all(is_invariant(obs["bond01"], group).values())
+    assert all(is_invariant(used["bond01"], group).values())
+    # stored, the averaged bond's diagonal blocks are sector operators (two-pass assembly, coded values)
+    after = CrossSectorObservables([c.sector for c in comps], {"bond01": used["bond01"]}, store=True)
+    assert after.stored and all(isinstance(m, StoredSectorMatrix) and m.matrix.coded for m in after.stored.values())
