@@ -60,7 +60,7 @@ def run_symmetric(L: int, n_times: int, t_max: float) -> dict:
     times = np.linspace(0.0, t_max, n_times)
     t0 = time.perf_counter()
     res = evolve_split(H, neel, times, _observables(L), reflection=True, spin_flip=True,
-                       block=RELAX_SECTOR_BLOCK)
+                       block=RELAX_SECTOR_BLOCK, store_observables=True)
     wall = time.perf_counter() - t0
     return {"L": L, "mode": "sectors", "seconds": wall, "peak_bytes": peak_rss_bytes(),
             "dims": [s["dimension"] for s in res["sectors"]], "final": float(res["curves"]["staggered"][-1]),

@@ -211,7 +211,8 @@ class CurveAnalysis:
     exact_z : float or None
         |window mean - exact| / err.
     status : str
-        'settled', 'drifting', 'window too short' or 'not settled'.
+        'settled', 'drifting', 'window too short' (disagrees with the diagonal ensemble), 'undecided' (every
+        check passes but the window holds fewer than MIN_INDEPENDENT correlation times) or 'not settled'.
     settled : bool
         True when none of the warnings below applies.
     reasons : tuple of str
@@ -426,7 +427,9 @@ def analyse_curve(
             )
     settled = not reasons
     if not settled and status == "settled":
-        status = "drifting" if drifting else "not settled"
+        # no drift, inside the band, agrees with the diagonal ensemble where known: only the error bar is not
+        # yet trustworthy (too few correlation times in the window) -- undecided, not a failure to settle
+        status = "drifting" if drifting else ("undecided" if wm.n_independent < MIN_INDEPENDENT else "not settled")
     head = (
         f"equilibrium {eq:.6g} +- {err:.2g} (window t in [{w0:.4g}, {t[-1]:.4g}], {rule}); "
         f"temporal variance sigma^2 = {variance:.3g}; tau_int = {wm.tau_int:.3g}"
@@ -435,6 +438,9 @@ def analyse_curve(
         head += f"; diagonal ensemble {exact_equilibrium:.6g} ({exact_z:.1f} errors away)"
     if settled:
         verdict = f"Settled: {head}; relaxation time {t_relax:.4g} ({relax_note})."
+    elif status == "undecided":
+        verdict = ("Undecided: " + head + ". " + " ".join(reasons) + " Nothing else fails: run longer to decide."
+                   + f" Relaxation time {t_relax:.4g} ({relax_note}).")
     else:
         verdict = (f"Not settled ({status}): " + head + ". " + " ".join(reasons)
                    + f" Relaxation time {t_relax:.4g} ({relax_note}).")

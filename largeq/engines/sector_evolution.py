@@ -20,7 +20,7 @@ from largeq.engines.bounds import spectral_bounds
 from largeq.engines.propagate import evolve
 from largeq.model.pauli import PauliSum
 from largeq.operators.sector_operator import (SectorComponent, SymmetricOperator, is_invariant, sector_observables,
-                                              split_start, stabiliser_average)
+                                              split_start, observables_for_start)
 
 __all__ = ["SectorProgress", "advance_sectors", "evolve_split"]
 
@@ -101,20 +101,9 @@ def _sector_info(c: SectorComponent) -> dict:
     return {"label": c.sector.label, "key": c.sector.key, "dimension": c.sector.dim, "weight": c.weight}
 
 
-def _equivalences(observables, bits, group) -> dict:
-    out = {}
-    for name, a in observables.items():
-        avg, differs = stabiliser_average(a, bits, group)
-        if differs:
-            out[name] = ("for this initial state and a G-invariant H, <%s(t)> equals the curve of its average over "
-                         "the state's stabiliser (%d terms); the value reported is computed for %s itself"
-                         % (name, len(avg), name))
-    return out
-
-
 def evolve_split(H: PauliSum, start, times, observables: dict[str, PauliSum], *, translation: bool = True,
                  reflection: bool = False, spin_flip: bool = False, lookup: str = "block", tol: float = 1e-10,
-                 store_matrix: bool = True, block: int = 1, tables: bool = False,
+                 store_matrix: bool = True, block: int = 1, tables: bool = False, store_observables: bool = False,
                  conserve_magnetization: bool | None = None) -> dict:
     """Relaxation curves of any Hermitian Pauli-sum observables from a product state, sector by sector
     (:func:`advance_sectors`).
@@ -122,7 +111,9 @@ def evolve_split(H: PauliSum, start, times, observables: dict[str, PauliSum], *,
     ``start``: a z-basis integer or spinors of shape (L, 2) (tilted states; see
     :func:`~largeq.operators.sector_operator.split_start`; ``conserve_magnetization`` None asks H).
     The curves come from :func:`~largeq.operators.sector_operator.sector_observables` (cross terms
-    included; ``tables`` as there).  ``store_matrix`` (default True) stores each sector matrix as CSR
+    included; ``tables`` as there, ``store_observables`` its ``store``); for a z-basis start each observable
+    is evaluated as its average over the symmetry operations fixing the start (the same curve; see
+    :func:`~largeq.operators.sector_operator.observables_for_start`), as ``relax`` does.  ``store_matrix`` (default True) stores each sector matrix as CSR
     (see :class:`~largeq.operators.sector_operator.StoredSectorMatrix`); False keeps the evolution fully
     matrix-free (vectors and O(dim) tables only).
 
@@ -138,7 +129,10 @@ def evolve_split(H: PauliSum, start, times, observables: dict[str, PauliSum], *,
     bad = [k for k, v in is_invariant(H, group).items() if not v]
     if bad:
         raise ValueError(f"H is not invariant under {', '.join(bad)}")
-    cross = sector_observables(sectors, observables, tables=tables)
+    equivalences = {}
+    if isinstance(start, (int, np.integer)):
+        observables, equivalences = observables_for_start(observables, int(start), group)
+    cross = sector_observables(sectors, observables, tables=tables, store=store_observables)
     ops = [SymmetricOperator(H, c.sector, check=False) for c in comps]
     if store_matrix:
         ops = [op.stored() for op in ops]
@@ -152,9 +146,6 @@ def evolve_split(H: PauliSum, start, times, observables: dict[str, PauliSum], *,
     states = [c.vector.copy() for c in comps]
     record(0, states)
     progress = advance_sectors(ops, states, times, bounds=bounds, tol=tol, block=block, on_outputs=record)
-    equivalences = {}
-    if isinstance(start, (int, np.integer)) and group.up_spins is not None:
-        equivalences = _equivalences(observables, int(start), group)
     return {"curves": curves, "sectors": [_sector_info(c) for c in comps], "note": note,
             "equivalences": equivalences, "table_bytes": cross.table_bytes(), "bounds": bounds,
             "matvecs": progress.matvecs}

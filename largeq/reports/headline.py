@@ -164,7 +164,13 @@ def relax_headline(summary: dict) -> list[HeadlineLine]:
     for name, o in (summary.get("observables") or {}).items():
         k = lambda f: _obs_key(name, f)  # noqa: E731
         settled = bool(o.get("settled"))
-        parts: list = ["settles at " if settled else "does NOT settle within the run; late-window mean "]
+        if settled:
+            parts: list = ["settles at "]
+        elif o.get("status") == "undecided":
+            parts = ["undecided (no drift, but the window is too short for a reliable error bar: run longer); "
+                     "late-window mean "]
+        else:
+            parts = ["does NOT settle within the run; late-window mean "]
         err = o.get("equilibrium_err")
         parts.append(Cell(fmt_error(o.get("equilibrium"), err), k("equilibrium"), o.get("equilibrium")))
         t_relax = o.get("relaxation_time")

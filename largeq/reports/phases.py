@@ -5,7 +5,17 @@ from __future__ import annotations
 import time
 from contextlib import contextmanager
 
-__all__ = ["PhaseClock", "process_start_time"]
+__all__ = ["PhaseClock", "process_start_time", "stderr_announcer"]
+
+
+def stderr_announcer(prefix: str):
+    """A PhaseClock ``announce`` that writes ``prefix: line`` to stderr at once (unbuffered in logs too)."""
+    import sys
+
+    def announce(line: str) -> None:
+        print(f"{prefix}: {line}", file=sys.stderr, flush=True)
+
+    return announce
 
 
 def process_start_time() -> float:
@@ -46,10 +56,13 @@ class PhaseClock:
     """Seconds per named phase and in total since ``started`` (epoch seconds; default: now).
 
     ``before`` adds time spent in earlier processes (a resumed run's elapsed time before the interruption).
+    ``announce`` (optional) receives a line when a phase starts and when it ends, so a long run says what it
+    is doing before its progress bar appears.
     """
 
-    def __init__(self, started: float | None = None, before: float = 0.0):
+    def __init__(self, started: float | None = None, before: float = 0.0, announce=None):
         now = time.time()
+        self.announce = announce
         self.started = now if started is None else float(started)
         self.before = float(before)
         self.phases: dict[str, float] = {}
@@ -59,10 +72,15 @@ class PhaseClock:
     @contextmanager
     def phase(self, name: str):
         t0 = time.time()
+        if self.announce is not None:
+            self.announce(f"{name} ...")
         try:
             yield
         finally:
-            self.phases[name] = self.phases.get(name, 0.0) + time.time() - t0
+            dt = time.time() - t0
+            self.phases[name] = self.phases.get(name, 0.0) + dt
+            if self.announce is not None:
+                self.announce(f"{name}: {dt:.1f} s")
 
     def add(self, name: str, seconds: float) -> None:
         self.phases[name] = self.phases.get(name, 0.0) + float(seconds)

@@ -25,7 +25,8 @@ from largeq.engines.propagate import evolve
 from largeq.engines.sector_evolution import advance_sectors
 from largeq.workflows.equilibration_step import equilibration_report
 from largeq.workflows.relax_report import draw_relax_plots, known_curve_summary, write_relax_report
-from largeq.workflows.planning import available_bytes, check_fits, choose_block, plan_run, sector_decision
+from largeq.workflows.planning import (available_bytes, check_fits, choose_block, format_bytes, plan_run,
+                                      sector_decision)
 from largeq.reports.progress import progress_bar
 from largeq.reports.checkpoint import CHECKPOINT_NAME, Checkpointer, load_checkpoint
 from largeq.reports.run_record import run_attributes
@@ -265,6 +266,14 @@ def sector_run_observables(problem: Problem, comps) -> tuple[dict, dict]:
     return observables_for_start(obs, problem.start.bits, comps[0].sector.group)
 
 
+def _announcer(options: RelaxOptions):
+    """Phase lines on stderr when progress is shown (``--progress``, or a terminal), else None."""
+    from largeq.reports.phases import stderr_announcer
+    from largeq.reports.progress import progress_enabled
+
+    return stderr_announcer("largeq relax") if progress_enabled(options.progress) else None
+
+
 def run_relaxation(scenario: Scenario, folder=None, options: RelaxOptions = RelaxOptions(), *,
                    overwrite: bool = False) -> RelaxRun:
     """Run the relaxation job of ``scenario`` into a run folder (new, or ``folder``).
@@ -274,7 +283,7 @@ def run_relaxation(scenario: Scenario, folder=None, options: RelaxOptions = Rela
     a finished run is refused unless ``overwrite``.
     """
     window_start_of(scenario, options.window_start)  # a window outside the time grid is refused up front
-    clock = PhaseClock(options.started)
+    clock = PhaseClock(options.started, announce=_announcer(options))
     text = scenario_to_toml(scenario)
     if folder is not None and (Path(folder) / CHECKPOINT_NAME).exists():
         raise WorkflowError(f"{folder} holds an unfinished run; continue it with 'largeq relax --resume {folder}'")
@@ -305,7 +314,7 @@ def resume_relaxation(folder, options: RelaxOptions = RelaxOptions(), *, given=N
     options = restore_options(folder, options, given)
     if run_is_finished(folder):
         return RelaxRun(folder, read_summary(folder / "summary.json"), already_finished=True)
-    clock = PhaseClock(options.started)
+    clock = PhaseClock(options.started, announce=_announcer(options))
     scenario = load_scenario(folder / SCENARIO_FILE)
     text = scenario_to_toml(scenario)
     with clock.phase("plan and build"):
@@ -413,6 +422,8 @@ def _execute_sectors(problem: Problem, text: str, folder: Path, times, plan, opt
     interval = scenario.numerics.checkpoint_seconds if options.checkpoint_seconds is None else options.checkpoint_seconds
     ck = Checkpointer(folder, interval, fingerprint=fp)
     comps, block = plan["components"], plan["block"]
+    if clock.announce is not None:
+        clock.announce(f"{plan['reason']}; memory forecast {format_bytes(plan['forecast'].total_bytes)}")
     with clock.phase("sector matrices"), compiled_kernels():
         ops = [SymmetricOperator(problem.hamiltonian, c.sector) for c in comps]
         if plan["store"]:

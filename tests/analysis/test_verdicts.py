@@ -75,3 +75,19 @@ def test_verdict_agrees_with_diagonal_ensemble_for_a_chaotic_quench():
     assert r.exact_z < 3, r.verdict
     assert not any("differs from the exact" in s for s in r.reasons)
     assert np.isfinite(r.relaxation_time) and r.relaxation_time < 20.0
+
+
+def test_too_few_correlation_times_alone_is_undecided_not_unsettled():
+    """A stationary curve fluctuating slowly about a known value (a sum of incommensurate cosines, whose
+    time average is exactly its constant, 0.3): every check passes except the count of correlation times
+    in the window, so the status is 'undecided' (run longer), not 'not settled'."""
+    freqs = 0.5 * np.array([0.71, 1.13, 1.61, 2.27, 2.93])
+
+    def curve(t):
+        return 0.3 + 0.01 * np.cos(np.outer(t, freqs)).sum(axis=1)
+
+    short = np.linspace(0.0, 12.0, 121)
+    r = analyse_curve(short, curve(short), exact_equilibrium=0.3)
+    assert not r.settled and r.status == "undecided", r.verdict
+    assert r.verdict.startswith("Undecided") and len(r.reasons) == 1 and "correlation times" in r.reasons[0]
+    assert abs(r.equilibrium - 0.3) < 3 * r.equilibrium_err

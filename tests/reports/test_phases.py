@@ -23,3 +23,15 @@ def test_startup_phase_counts_from_the_given_start():
     clock = PhaseClock(started=time.time() - 0.5)
     assert 0.5 <= clock.phases["startup"] < 5.0
     assert process_start_time() <= time.time()
+
+
+def test_phases_are_announced_when_asked():
+    lines = []
+    clock = PhaseClock(announce=lines.append)
+    with clock.phase("sector matrices"):
+        pass
+    assert lines[0] == "sector matrices ..." and lines[1].startswith("sector matrices: ") and lines[1].endswith(" s")
+    quiet = PhaseClock()
+    with quiet.phase("evolution"):
+        pass
+    assert "evolution" in quiet.phases
