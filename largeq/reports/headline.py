@@ -233,6 +233,8 @@ def relax_headline(summary: dict) -> list[HeadlineLine]:
                  _cell(summary, "phase_seconds[equilibration]", lambda v: fmt(v, digits=3)), " s"]
     if _finite(summary.get("memory_forecast_bytes")):
         cost += [", memory forecast ", _cell(summary, "memory_forecast_bytes", _bytes)]
+    if _finite(summary.get("peak_rss_bytes")):
+        cost += [", peak measured ", _cell(summary, "peak_rss_bytes", _bytes)]
     lines.append(HeadlineLine("cost", cost))
     lines.append(HeadlineLine("drifts", [
         "energy ", _cell(summary, "energy_drift", lambda v: fmt(v, digits=2)), ", norm ",

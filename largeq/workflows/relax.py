@@ -266,6 +266,19 @@ def sector_run_observables(problem: Problem, comps) -> tuple[dict, dict]:
     return observables_for_start(obs, problem.start.bits, comps[0].sector.group)
 
 
+def _peak_rss_bytes() -> int | None:
+    """The largest resident memory this process has held so far (this process only: a resumed run's
+    earlier processes are not counted); None where the platform does not say."""
+    try:
+        import resource
+    except ImportError:  # not on Windows
+        return None
+    import sys as _sys
+
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    return int(peak if _sys.platform == "darwin" else peak * 1024)  # bytes on macOS, KiB on Linux
+
+
 def _announcer(options: RelaxOptions):
     """Phase lines on stderr when progress is shown (``--progress``, or a terminal), else None."""
     from largeq.reports.phases import stderr_announcer
@@ -580,6 +593,7 @@ def _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, m
         "tolerance": scenario.numerics.tolerance,
         "block": block,
         "memory_forecast_bytes": forecast.total_bytes,
+        "peak_rss_bytes": _peak_rss_bytes(),
         "observables": {
             n: {
                 "equilibrium": a.equilibrium,

@@ -162,6 +162,8 @@ def _run_rows(summary: dict, attrs: dict) -> list:
          f"step {fmt(grid.get('step'), digits=4)} (1/J)" if grid.get("step") else ""),
         ("matrix-vector products", f"{summary['matvecs']:,}", ""),
         ("memory forecast", plots_bytes(summary["memory_forecast_bytes"]), "peak, forecast before the run"),
+        ("memory measured", plots_bytes(summary.get("peak_rss_bytes")) if summary.get("peak_rss_bytes") else "n/a",
+         "peak resident memory of the process that finished the run"),
     ]
     sectors = summary.get("symmetry_sectors")
     if sectors:

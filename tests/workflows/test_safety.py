@@ -194,6 +194,8 @@ def test_wall_seconds_cover_the_whole_command(tmp_path):
     # the recorded wall time is the command's: within the subprocess's own lifetime, and at least the phases
     assert sum(phases.values()) <= s["wall_seconds"] + 1e-3
     assert s["wall_seconds"] <= elapsed
+    # the measured peak is recorded, and the forecast made before the run (which claims to be the peak) covers it
+    assert 2**20 < s["peak_rss_bytes"] <= s["memory_forecast_bytes"]
     assert s["wall_seconds"] >= 0.5 * elapsed  # interpreter exit is the only part outside
 
 
