@@ -61,6 +61,7 @@ from largeq.basis.blocks import (StateBlock, SymmetryGroup, state_blocks, state_
                                  symmetry_blocks, symmetry_group)
 from largeq.engines.exact_split import quench_split, split_memory_bytes
 from largeq.constants import BOUNDS_SEED, MAX_DENSE_DIM
+from largeq.machine import available_bytes
 
 __all__ = [
     "DenseLimitError",
@@ -253,18 +254,6 @@ class ExactEquilibration:
         }
 
 
-def _available_bytes() -> int:
-    """MemAvailable from /proc/meminfo (bytes); 8 GiB when unknown."""
-    try:
-        with open("/proc/meminfo") as fh:
-            for line in fh:
-                if line.startswith("MemAvailable:"):
-                    return int(line.split()[1]) * 1024
-    except OSError:
-        pass
-    return 8 * 2**30
-
-
 @dataclass(frozen=True)
 class ExactPlan:
     """What exact equilibration would diagonalize, known before anything large is allocated.
@@ -376,7 +365,7 @@ def exact_equilibration(problem, *, max_dim: int = MAX_DENSE_DIM, reduce: bool =
             f"dense diagonalization of a block of dimension {plan.largest:,} refused (max_dim = {max_dim:,}; "
             f"{plan.description}); it would need about {plan.memory_bytes / 2**30:.1f} GiB and O(D^3) time. "
             "Use a smaller chain or the KPM estimate.")
-    limit = int(0.9 * _available_bytes()) if memory_limit is None else int(memory_limit)
+    limit = int(0.9 * available_bytes()) if memory_limit is None else int(memory_limit)
     if plan.memory_bytes > limit:
         raise DenseLimitError(
             f"exact equilibration refused: forecast {plan.memory_bytes / 2**30:.1f} GiB > limit "

@@ -13,6 +13,8 @@ from math import comb
 import numpy as np
 import psutil
 
+from largeq.machine import available_bytes
+
 __all__ = ["MemoryForecast", "evolution_forecast", "kpm_forecast", "exact_forecast", "available_bytes",
            "check_fits", "MemoryRefusal", "format_bytes"]
 
@@ -29,11 +31,6 @@ def format_bytes(n: float) -> str:
         if abs(n) >= size:
             return f"{n / size:.2f} {unit}"
     return f"{int(n)} B"
-
-
-def available_bytes() -> int:
-    """Memory available to a new allocation now (psutil's 'available')."""
-    return int(psutil.virtual_memory().available)
 
 
 @dataclass(frozen=True)
