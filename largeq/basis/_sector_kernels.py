@@ -563,24 +563,10 @@ def cross_pair_expect(L, full, use_t, use_r, use_f, reps_a, nrm_a, x_a, n_up_b, 
             r = reps_a[i]
             acc = 0j
             for g in range(gx.shape[0]):
-                b = r ^ gx[g]
-                if n_up_b >= 0 and popcount(b) != n_up_b:
-                    continue
-                cf = 0j
-                for q in range(gptr[g], gptr[g + 1]):
-                    cf += gc[q] * zsign(gz[q], b)
-                if cf == 0:
-                    continue
-                rb, j, f, p = find_rep(b, L, full, use_t, use_r, use_f)
-                idx = lookup(rb, mode, reps_b, blk_b, n_lo_b, rank_tab_b, boff_b, lo_rank_b)
-                if idx < 0:
-                    continue
-                ch = tphase_b[j]
-                if p == 1:
-                    ch = ch * sr_b
-                if f == 1:
-                    ch = ch * sf_b
-                acc += (cf * ch) * nrm_b[idx] * x_b[idx]
+                idx, v = _entry(r, g, L, full, n_up_b, use_t, use_r, use_f, tphase_b, sr_b, sf_b, reps_b, mode,
+                                blk_b, n_lo_b, rank_tab_b, boff_b, lo_rank_b, gx, gptr, gz, gc)
+                if idx >= 0:
+                    acc += v * nrm_b[idx] * x_b[idx]
             s += np.conj(xa) * acc / nrm_a[i]
         partial[c] = s
 
@@ -622,25 +608,12 @@ def cross_pair_coo(L, full, use_t, use_r, use_f, reps_a, nrm_a, n_up_b, tphase_b
     for i in range(reps_a.shape[0]):
         r = reps_a[i]
         for g in range(gx.shape[0]):
-            b = r ^ gx[g]
-            if n_up_b >= 0 and popcount(b) != n_up_b:
-                continue
-            cf = 0j
-            for q in range(gptr[g], gptr[g + 1]):
-                cf += gc[q] * zsign(gz[q], b)
-            if cf == 0:
-                continue
-            rb, j, f, p = find_rep(b, L, full, use_t, use_r, use_f)
-            idx = lookup(rb, mode, reps_b, blk_b, n_lo_b, rank_tab_b, boff_b, lo_rank_b)
+            idx, v = _entry(r, g, L, full, n_up_b, use_t, use_r, use_f, tphase_b, sr_b, sf_b, reps_b, mode, blk_b,
+                            n_lo_b, rank_tab_b, boff_b, lo_rank_b, gx, gptr, gz, gc)
             if idx < 0:
                 continue
-            ch = tphase_b[j]
-            if p == 1:
-                ch = ch * sr_b
-            if f == 1:
-                ch = ch * sf_b
             rows[e] = i
             cols[e] = idx
-            vals[e] = (cf * ch) * nrm_b[idx] / nrm_a[i]
+            vals[e] = v * nrm_b[idx] / nrm_a[i]
             e += 1
     return e
