@@ -1,8 +1,12 @@
-"""What this computer offers now: memory free for a new allocation (one place; every layer may import it)."""
+"""What this computer offers now: memory free for a new allocation, and how long a random read from a vector
+of a given size takes (one place; every layer may import it)."""
 
 from __future__ import annotations
 
-__all__ = ["available_bytes"]
+import functools
+import time
+
+__all__ = ["available_bytes", "random_read_seconds"]
 
 
 def available_bytes() -> int:
@@ -10,3 +14,44 @@ def available_bytes() -> int:
     import psutil
 
     return int(psutil.virtual_memory().available)
+
+
+def random_read_seconds(nbytes: int, *, reads: int = 4_000_000, repeats: int = 3) -> float:
+    """Median seconds per random read of one complex128 entry from a vector of ``nbytes`` bytes (all cores).
+
+    Products with a sparse matrix read the input vector at scattered positions; once the vector no longer
+    fits in the caches each read waits for memory, several times longer than a cached one.  The ratio of this
+    time at two vector sizes scales a product's time measured at one size to the other.
+    """
+    import numpy as np
+
+    gather_sum = _gather_kernel()
+    n = max(int(nbytes) // 16, 1)
+    x = np.ones(n, np.complex128)
+    idx = np.random.default_rng(0).integers(0, n, int(reads)).astype(np.int64)
+    out = np.zeros(64, np.complex128)
+    gather_sum(x, idx, out)  # compile, and touch the pages
+    times = []
+    for _ in range(int(repeats)):
+        t0 = time.perf_counter()
+        gather_sum(x, idx, out)
+        times.append(time.perf_counter() - t0)
+    return float(np.median(times)) / idx.size
+
+
+@functools.cache
+def _gather_kernel():
+    """sum of x[idx] in fixed chunks over all threads (compiled on first use)."""
+    from numba import njit, prange
+
+    @njit(parallel=True)
+    def gather_sum(x, idx, out):
+        nc = out.shape[0]
+        n = idx.shape[0]
+        for c in prange(nc):
+            s = 0j
+            for i in range(c * n // nc, (c + 1) * n // nc):
+                s += x[idx[i]]
+            out[c] = s
+
+    return gather_sum

@@ -147,11 +147,18 @@ def _block(dim, L, n_times, available, block):
 
 
 def predict_evolution(scenario: Scenario, cal: Calibration, *, block: int | None = None,
-                      available: int | None = None, dimension: int | None = None) -> dict:
+                      available: int | None = None, dimension: int | None = None,
+                      vector_bytes: int | None = None) -> dict:
     """Products and wall time of the relax job's evolution at the scenario's length (see the module doc).
 
     ``dimension``: states evolved (default: the magnetization / full basis; the sum of the sector dimensions on
-    the sector path, taken at the calibrated cost per state and term).  Nothing is built at the target length.
+    the sector path, taken at the calibrated cost per state and term).  ``vector_bytes``: the largest vector one
+    product reads (default 16 x dimension; one sector's on the sector path).  When it is larger than the
+    calibration's, products, energies and observables are scaled by the measured ratio of random-read times
+    from vectors of the two sizes (:func:`largeq.machine.random_read_seconds`; the test vector holds at most
+    2 GiB and a quarter of the free memory): a vector that no longer fits in the caches makes every scattered read wait for memory
+    (measured here: 3.6x per stored entry from L = 30 to L = 34 of the Néel sectors).
+    Nothing is built at the target length.
     """
     from largeq.engines.propagate import chebyshev_order
     from largeq.model import build as model
@@ -177,12 +184,14 @@ def predict_evolution(scenario: Scenario, cal: Calibration, *, block: int | None
         axpys += sum(orders)  # c_0 scaling and one update per kept term, per output of the block
         i = j
     sd = D / cal.dimension
-    t_prod = cal.seconds_per_product * sd * terms / cal.terms
+    reads = _read_factor(16 * cal.dimension, 16 * D if vector_bytes is None else int(vector_bytes))
+    t_prod = cal.seconds_per_product * sd * terms / cal.terms * reads["factor"]
     t_axpy = cal.seconds_per_axpy * sd
     t_vdot = cal.seconds_per_vdot * sd
-    t_energy = cal.seconds_per_energy * sd * terms / cal.terms
+    t_energy = cal.seconds_per_energy * sd * terms / cal.terms * reads["factor"]
     obs_terms = {nm: int(len(o.pauli.coeff)) for nm, o in observables.items()}
-    t_obs = sum(cal.seconds_per_observable[nm] * sd * obs_terms[nm] / max(cal.obs_terms[nm], 1) for nm in obs_terms)
+    t_obs = reads["factor"] * sum(cal.seconds_per_observable[nm] * sd * obs_terms[nm] / max(cal.obs_terms[nm], 1)
+                                  for nm in obs_terms)
     t_output = t_energy + t_obs + 3 * t_vdot  # norm, survival overlap, per-step norm check
     bounds_products = BOUNDS_STEPS
     seconds = (products * t_prod + axpys * t_axpy + times.size * t_output
@@ -190,7 +199,24 @@ def predict_evolution(scenario: Scenario, cal: Calibration, *, block: int | None
     return {"sites": L, "dimension": D, "terms": terms, "half_width": a, "t_max": float(times[-1]), "block": B, "outputs": int(times.size),
             "products": int(products), "vector_updates": int(axpys), "bounds_products": bounds_products,
             "seconds_per_product": t_prod, "seconds_per_output": t_output, "seconds": seconds,
-            "tolerance": tol}
+            "tolerance": tol, "random_reads": reads}
+
+
+def _read_factor(cal_bytes: int, target_bytes: int) -> dict:
+    """How much slower scattered reads are from the target's vector than from the calibration's (>= 1).
+    The test vector is at most 2 GiB (far beyond any cache) and a quarter of the memory free now."""
+    from largeq.machine import available_bytes as free_now, random_read_seconds
+
+    out = {"calibration_vector_bytes": int(cal_bytes), "target_vector_bytes": int(target_bytes), "factor": 1.0,
+           "measured_bytes": None}
+    if target_bytes <= 2 * cal_bytes:
+        return out
+    size = int(min(target_bytes, free_now() // 4, 1 << 31))
+    t_cal = random_read_seconds(cal_bytes)
+    t_big = random_read_seconds(size)
+    out.update(factor=max(1.0, t_big / t_cal), measured_bytes=size, seconds_per_read_calibration=t_cal,
+               seconds_per_read_target=t_big)
+    return out
 
 
 def predict_kpm(dim_scale_product: float, n_moments: int = 256, n_vectors: int = 20, t_vdot: float = 0.0) -> dict:
@@ -333,7 +359,9 @@ def forecast(scenario: Scenario, *, from_sweep=None, calibrate_here: bool = True
            "plan": plan.as_dict()}
     if calibrate_here:
         cal = calibrate(scenario, L)
-        ev = predict_evolution(scenario, cal, block=plan.block, available=avail, dimension=plan.dimension)
+        largest = max((c.dimension for c in plan.sectors), default=D) if plan.path == "sectors" else D
+        ev = predict_evolution(scenario, cal, block=plan.block, available=avail, dimension=plan.dimension,
+                               vector_bytes=largest * COMPLEX)
         kpm = predict_kpm(ev["seconds_per_product"], t_vdot=cal.seconds_per_vdot * D / cal.dimension)
         out.update(calibration=cal.as_dict(), evolution=ev, kpm=kpm)
     if from_sweep is not None:
@@ -403,6 +431,13 @@ def format_forecast(f: dict) -> str:
         out.append(f"  evolution to t = {e['t_max']:g}: spectral half-width {e['half_width']:.4g} "
                    f"(scaled), block {e['block']}, {e['products']:,} products + {e['bounds_products']} for bounds, "
                    f"{e['outputs']} outputs; {e['seconds_per_product']:.3g} s per product")
+        rr = e.get("random_reads") or {}
+        if rr.get("measured_bytes"):
+            capped = "" if rr["measured_bytes"] >= rr["target_vector_bytes"] else (
+                f", measured on {format_bytes(rr['measured_bytes'])} for lack of free memory: a lower bound")
+            out.append(f"  scattered reads from a {format_bytes(rr['target_vector_bytes'])} vector are "
+                       f"{rr['factor']:.2g}x slower than from the calibration's {format_bytes(rr['calibration_vector_bytes'])} "
+                       f"(measured now{capped}); products scaled by that")
         out.append(f"  predicted evolution wall time: {_human_time(e['seconds'])}")
         k = f["kpm"]
         out.append(f"  KPM spectra ({k['n_moments']} moments, {k['n_vectors']} vectors): {k['products']:,} products, "

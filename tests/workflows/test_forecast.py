@@ -89,3 +89,17 @@ def test_predicted_memory_within_20_percent(L):
     peak = json.loads(res.stdout.strip().splitlines()[-1])["peak_rss_bytes"]
     predicted = f["memory"]["chebyshev"]["total_bytes"]
     assert abs(predicted - peak) < 0.2 * peak, (predicted, peak)
+
+
+def test_scattered_reads_from_a_large_vector_scale_the_product_time():
+    """A vector far beyond any cache (1 GiB) is read more slowly at scattered positions than one inside the
+    first-level caches (64 KiB); the forecast scales products by that ratio only when the target's vector is
+    larger than the calibration's."""
+    from largeq.machine import random_read_seconds
+    from largeq.workflows.forecast import _read_factor
+
+    assert random_read_seconds(1 << 30, reads=2_000_000) > random_read_seconds(1 << 16, reads=2_000_000)
+    same = _read_factor(1 << 20, 1 << 20)
+    assert same["factor"] == 1.0 and same["measured_bytes"] is None
+    big = _read_factor(1 << 16, 1 << 30)
+    assert big["factor"] >= 1.0 and 0 < big["measured_bytes"] <= 1 << 30
