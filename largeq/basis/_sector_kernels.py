@@ -36,7 +36,7 @@ _CHUNKS = 256
 
 __all__ = [
     "reverse_bits", "rotl", "min_rotation", "min_rotation_naive", "find_rep", "count_reps", "fill_reps",
-    "stabilisers", "lookup", "diag_values", "sym_fused", "sym_expect", "sym_coo", "project_states",
+    "stabilisers", "lookup", "diag_values", "sym_fused", "sym_expect", "sym_csr_counts", "sym_csr_fill", "csr_coded_fused", "project_states",
     "expand_states", "cross_tables", "cross_eval", "cross_pair_expect", "product_amplitudes",
 ]
 

@@ -195,8 +195,9 @@ class SymmetricOperator(FusedOperator):
 
 class StoredSectorMatrix(SymmetricOperator):
     """A :class:`SymmetricOperator` whose products use its stored CSR matrix (built once by the
-    matrix-free kernel).  Trades memory (about (n_groups / 2 + 1) x dim entries, 12 bytes each for real sectors
-    and 20 for complex ones) for speed: the orbit scans and lookups are done once instead of at every product."""
+    matrix-free kernel).  Trades memory (about (n_groups / 2 + 1) x dim entries, 6 bytes each for real sectors
+    (int32 column, uint16 code of the value) and 20 for complex ones) for speed: the orbit scans and lookups are
+    done once instead of at every product."""
 
     def __init__(self, op: SymmetricOperator, *, coded: bool = True):
         self.__dict__.update(op.__dict__)
@@ -705,7 +706,10 @@ class CrossSectorObservables:
     or that no string of B_ab can connect (n_up differing by more than a string flips) are skipped.
     Memory: the Pauli strings of the B_ab only (no per-orbit tables, no magnetization-sector vector);
     with ``store`` each B_ab block is kept as CSR instead (about the nonzeros of the part of H with the
-    same x masks), so an evaluation costs one stored product per pair instead of the orbit scans.
+    same x masks), so an evaluation costs one stored product per pair instead of the orbit scans.  A
+    diagonal block B_aa invariant under the group is evaluated from its sector operator's diagonal (one
+    number per state, stored or not), and a stored off-diagonal invariant B_aa is a
+    :class:`StoredSectorMatrix` (two-pass assembly, coded values).
     The sectors must share the generators of G; they may differ in n_up (tilted states under a
     magnetization-conserving H).
     """
@@ -890,9 +894,10 @@ def stabiliser_average(obs: PauliSum, bits: int, group: GroupSpec) -> tuple[Paul
 def observables_for_start(observables: dict[str, PauliSum], bits: int, group: GroupSpec
                           ) -> tuple[dict[str, PauliSum], dict[str, str]]:
     """The observables a sector run evaluates for the z-basis start |bits>: each replaced by its
-    :func:`stabiliser_average` where that differs (the same curve for this start, usually with fewer
-    sector pairs and smaller stored blocks: a single bond of the Néel state becomes the mean bond, which
-    no longer couples momentum 0 to momentum pi).  Returns (observables, {name: note} for those replaced)."""
+    :func:`stabiliser_average` where that differs.  The curve is the same for this start, and the average is
+    often invariant under the whole group: a single bond of the Néel state becomes the mean bond, whose
+    blocks are then sector operators (stored like H, with coded values) instead of blocks built entry by
+    entry.  Returns (observables, {name: note} for those replaced)."""
     used, notes = {}, {}
     for name, a in observables.items():
         avg, differs = stabiliser_average(a, int(bits), group)

@@ -591,11 +591,12 @@ def plan_run(scenario, *, symmetry: str = "auto", block: int | None = None, avai
         common = dict(real=all(c.real for c in comps), n_groups=len(H.groups()), available=avail, n_sites=L,
                       off_diagonal=tuple(not a.is_diagonal() for a, _ in evaluated),
                       invariant=tuple(inv for _, inv in evaluated))
-        # output times per expansion: the largest of 8, 4, 2, 1 with which the sector matrices stay stored
-        # (stored products are ~10x faster than the orbit scans); 8 when none does
+        # output times per expansion: the largest of 8, 4, 2, 1 with which the sector matrices and the
+        # observable blocks that need storing stay stored (stored products are ~10x faster than orbit scans,
+        # and matrix-free observables cost orbit scans at every output); else the largest that keeps the
+        # matrices; 8 when none does
         blk = block
         if blk is None:
-            # prefer stored observable blocks as well: matrix-free, each output time costs orbit scans
             fits = [(k, *sector_memory(dims, block=k, **common)) for k in (8, 4, 2, 1)]
             blk = next((k for k, st, m in fits if st and (m["stored_observables"] or not any(
                 off or not inv for off, inv in zip(common["off_diagonal"], common["invariant"])))),

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import sys
 from dataclasses import dataclass, replace
 from pathlib import Path
 
@@ -273,10 +274,8 @@ def _peak_rss_bytes() -> int | None:
         import resource
     except ImportError:  # not on Windows
         return None
-    import sys as _sys
-
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
-    return int(peak if _sys.platform == "darwin" else peak * 1024)  # bytes on macOS, KiB on Linux
+    return int(peak if sys.platform == "darwin" else peak * 1024)  # bytes on macOS, KiB on Linux
 
 
 def _announcer(options: RelaxOptions):
@@ -428,7 +427,7 @@ class _SectorRecorder(_Recorder):
 def _execute_sectors(problem: Problem, text: str, folder: Path, times, plan, options, *, resume: bool,
                      clock: PhaseClock) -> RelaxRun:
     """The relaxation run with the state split over symmetry sectors, each evolved on its own."""
-    from largeq.operators.sector_operator import SymmetricOperator, observables_for_start, sector_observables
+    from largeq.operators.sector_operator import SymmetricOperator, sector_observables
 
     scenario = problem.scenario
     fp = fingerprint(text)
