@@ -409,6 +409,11 @@ def run_sweep(scenario: Scenario, sizes, folder=None, options: SweepOptions = Sw
         raise OptionError(f"target: --target {options.target} extrapolates fits over the sizes, which need at least 3 "
                           f"distinct sizes; got {len(sizes)} ({', '.join(map(str, sizes))})")
     tasks = _task_list(scenario, sizes, options)
+    if client is None and mode in ("serial", "local") and (folder is None or not Path(folder).exists()):
+        # a new run on this machine: a task beyond its free memory fits no local worker, so refuse before
+        # anything is written (the per-worker check below comes once the workers are known)
+        mem = available_bytes()
+        check_tasks_fit({name: task_forecast(sc, options, mem) for name, sc, _ in tasks}, {"this machine": mem})
     out = make_run_folder(folder, "sweep")
     atomic_write_text(out / "scenario.toml", scenario_to_toml(scenario))
     settings = options.task_settings()

@@ -86,6 +86,16 @@ def test_memory_refusal_names_the_task():
     check_tasks_fit(f, {"tcp://127.0.0.1:1": 16 * 2**30})
 
 
+def test_refused_sweep_writes_no_folder(tmp_path):
+    """A size beyond this machine's free memory is refused before the run folder exists."""
+    from largeq.workflows.sweep import run_sweep
+
+    folder = tmp_path / "never"
+    with pytest.raises(MemoryRefusal, match="L040"):
+        run_sweep(_short(), [8, 10, 40], folder, OPTS, mode="serial")
+    assert not folder.exists()
+
+
 def test_cli_serial_sweep(tmp_path, capsys):
     rc = main(["sweep", "xx_neel", "--sizes", "6", "8", "10", "--serial", "--no-thermal", "--out",
                str(tmp_path / "s"), "--target", "12"])
