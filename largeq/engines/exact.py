@@ -301,6 +301,63 @@ def _group_levels(energies: np.ndarray, tol: float) -> np.ndarray:
     return np.flatnonzero(new)
 
 
+@dataclass(frozen=True)
+class JointLevels:
+    """The eigenstates of several sectors joined: the state's coefficients, energies sorted, levels grouped
+    (equal within ``degeneracy_tol`` across sectors) with their weights p_E, IPR = sum_E p_E^2, mean and
+    variance of the energy, and the gap tolerance in force."""
+
+    dims: list
+    offsets: list
+    coeffs: np.ndarray
+    energies: np.ndarray
+    order: np.ndarray
+    e_sorted: np.ndarray
+    starts: np.ndarray
+    mult: np.ndarray
+    level_e: np.ndarray
+    p_m: np.ndarray
+    p_level: np.ndarray
+    ipr: float
+    e_mean: float
+    e_var: float
+    gap_tol: float
+
+
+def joint_levels(sectors, degeneracy_tol: float, gap_tol: float | None) -> JointLevels:
+    """Join (Spectrum, psi) pairs of several sectors into one level list (see :class:`JointLevels`);
+    the state must be normalised over all sectors together."""
+    dims, offsets, coeffs, energies = [], [0], [], []
+    for s, (spec, psi) in enumerate(sectors):
+        if not isinstance(spec, Spectrum):
+            raise ValueError(f"sectors[{s}][0] must be a Spectrum, got {type(spec).__name__}")
+        psi = np.asarray(psi).reshape(-1)
+        if psi.shape[0] != spec.dim:
+            raise ValueError(f"sectors[{s}]: psi has length {psi.shape[0]}, the spectrum has dimension {spec.dim}")
+        dims.append(spec.dim)
+        offsets.append(offsets[-1] + spec.dim)
+        coeffs.append(spec.vectors.conj().T @ psi)
+        energies.append(spec.energies)
+    c = np.concatenate(coeffs)
+    e_all = np.concatenate(energies).astype(float)
+    norm2 = float(np.sum(np.abs(c) ** 2))
+    if abs(norm2 - 1.0) > 1e-8:
+        raise ValueError(f"the state must be normalised over all sectors: sum ||psi_s||^2 = {norm2:.12g}, expected 1")
+    if gap_tol is None:
+        gap_tol = GAP_TOL_REL * max(1.0, float(np.max(np.abs(e_all))) if e_all.size else 1.0)
+    order = np.argsort(e_all, kind="stable")
+    e_sorted = e_all[order]
+    starts = _group_levels(e_sorted, float(degeneracy_tol))
+    mult = np.diff(np.append(starts, e_sorted.size))
+    level_e = np.add.reduceat(e_sorted, starts) / mult
+    p_m = np.abs(c[order]) ** 2
+    p_level = np.add.reduceat(p_m, starts)
+    e_mean = float(np.sum(p_m * e_sorted))
+    return JointLevels(dims, offsets, c, e_all, order, e_sorted, starts, mult, level_e, p_m, p_level,
+                       float(np.sum(p_level**2)), e_mean, float(max(np.sum(p_m * (e_sorted - e_mean) ** 2), 0.0)),
+                       float(gap_tol))
+
+
 def quench_sectors(
     sectors: Sequence[tuple[Spectrum, np.ndarray]],
     observables: Mapping[str, Mapping[tuple[int, int], object]] | None = None,
@@ -345,37 +402,12 @@ def quench_sectors(
         raise ValueError("sectors must hold at least one (Spectrum, psi) pair, got none")
     observables = dict(observables or {})
 
-    dims, offsets, coeffs, energies = [], [0], [], []
-    for s, (spec, psi) in enumerate(sectors):
-        if not isinstance(spec, Spectrum):
-            raise ValueError(f"sectors[{s}][0] must be a Spectrum, got {type(spec).__name__}")
-        psi = np.asarray(psi).reshape(-1)
-        if psi.shape[0] != spec.dim:
-            raise ValueError(f"sectors[{s}]: psi has length {psi.shape[0]}, the spectrum has dimension {spec.dim}")
-        dims.append(spec.dim)
-        offsets.append(offsets[-1] + spec.dim)
-        coeffs.append(spec.vectors.conj().T @ psi)
-        energies.append(spec.energies)
+    lv = joint_levels(sectors, degeneracy_tol, gap_tol)
+    dims, offsets, c = lv.dims, lv.offsets, lv.coeffs.astype(np.complex128)
     total = offsets[-1]
-    c = np.concatenate(coeffs).astype(np.complex128)
-    e_all = np.concatenate(energies).astype(float)
-    norm2 = float(np.sum(np.abs(c) ** 2))
-    if abs(norm2 - 1.0) > 1e-8:
-        raise ValueError(f"the state must be normalised over all sectors: sum ||psi_s||^2 = {norm2:.12g}, expected 1")
-
-    if gap_tol is None:
-        gap_tol = GAP_TOL_REL * max(1.0, float(np.max(np.abs(e_all))) if e_all.size else 1.0)
-    gap_tol = float(gap_tol)
-    order = np.argsort(e_all, kind="stable")
-    e_sorted = e_all[order]
-    starts = _group_levels(e_sorted, float(degeneracy_tol))
-    mult = np.diff(np.append(starts, e_sorted.size))
-    level_e = np.add.reduceat(e_sorted, starts) / mult
-    p_m = np.abs(c[order]) ** 2
-    p_level = np.add.reduceat(p_m, starts)
-    ipr = float(np.sum(p_level**2))
-    e_mean = float(np.sum(p_m * e_sorted))
-    e_var = float(max(np.sum(p_m * (e_sorted - e_mean) ** 2), 0.0))
+    gap_tol = lv.gap_tol
+    order, starts, mult, level_e = lv.order, lv.starts, lv.mult, lv.level_e
+    p_m, p_level, ipr, e_mean, e_var = lv.p_m, lv.p_level, lv.ipr, lv.e_mean, lv.e_var
 
     # gap clusters among occupied levels, positive gaps only (negative ones are their mirror images)
     occ = np.flatnonzero(p_level > OCCUPATION_FLOOR)

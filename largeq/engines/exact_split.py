@@ -23,8 +23,7 @@ import numpy as np
 import scipy.sparse
 from numba import njit
 
-from largeq.engines.exact import (GAP_TOL_REL, OCCUPATION_FLOOR, ExactQuench, ObservableQuench, Spectrum,
-                                  _group_levels)
+from largeq.engines.exact import OCCUPATION_FLOOR, ExactQuench, ObservableQuench, Spectrum, joint_levels
 
 __all__ = ["quench_split", "gap_clusters", "split_memory_bytes"]
 
@@ -207,33 +206,11 @@ def quench_split(
     if len(sectors) == 0:
         raise ValueError("sectors must hold at least one (Spectrum, psi) pair, got none")
     observables = dict(observables or {})
-    dims, offsets, coeffs, energies = [], [0], [], []
-    for s, (spec, psi) in enumerate(sectors):
-        psi = np.asarray(psi).reshape(-1)
-        if psi.shape[0] != spec.dim:
-            raise ValueError(f"sectors[{s}]: psi has length {psi.shape[0]}, the spectrum has dimension {spec.dim}")
-        dims.append(spec.dim)
-        offsets.append(offsets[-1] + spec.dim)
-        coeffs.append(spec.vectors.conj().T @ psi)
-        energies.append(spec.energies)
+    lv = joint_levels(sectors, degeneracy_tol, gap_tol)
+    dims, offsets, e_all, gap_tol = lv.dims, lv.offsets, lv.energies, lv.gap_tol
     n_sec = len(sectors)
-    c = np.concatenate(coeffs)
-    e_all = np.concatenate(energies).astype(float)
-    norm2 = float(np.sum(np.abs(c) ** 2))
-    if abs(norm2 - 1.0) > 1e-8:
-        raise ValueError(f"the state must be normalised over all sectors: sum ||psi_s||^2 = {norm2:.12g}, expected 1")
-    if gap_tol is None:
-        gap_tol = GAP_TOL_REL * max(1.0, float(np.max(np.abs(e_all))) if e_all.size else 1.0)
-    order = np.argsort(e_all, kind="stable")
-    e_sorted = e_all[order]
-    starts = _group_levels(e_sorted, float(degeneracy_tol))
-    mult = np.diff(np.append(starts, e_sorted.size))
-    level_e = np.add.reduceat(e_sorted, starts) / mult
-    p_m = np.abs(c[order]) ** 2
-    p_level = np.add.reduceat(p_m, starts)
-    ipr = float(np.sum(p_level**2))
-    e_mean = float(np.sum(p_m * e_sorted))
-    e_var = float(max(np.sum(p_m * (e_sorted - e_mean) ** 2), 0.0))
+    order, mult, level_e = lv.order, lv.mult, lv.level_e
+    p_m, p_level, ipr, e_mean, e_var = lv.p_m, lv.p_level, lv.ipr, lv.e_mean, lv.e_var
     n_lev = level_e.size
 
     # level of each eigenvector (global index), occupied levels renumbered 0..n_occ-1
@@ -258,7 +235,7 @@ def quench_split(
     # per-sector level columns Y_s = V_s diag(c_s) summed within a level, occupied levels only
     cols, col_lev = [], []
     for s, (spec, _) in enumerate(sectors):
-        cs = coeffs[s]
+        cs = lv.coeffs[offsets[s]:offsets[s + 1]]
         if np.iscomplexobj(spec.vectors) or np.max(np.abs(cs.imag), initial=0.0) > 0:
             v = spec.vectors.astype(np.complex128, copy=not consume)
             v *= cs[None, :]
