@@ -8,7 +8,7 @@ from largeq import __version__
 from largeq.operators.problem import spin_conventions
 from largeq.reports.store import package_versions, run_metadata
 
-__all__ = ["run_attributes"]
+__all__ = ["run_attributes", "summary_head"]
 
 
 def run_attributes(command: str, scenario_text: str, title: str, *, problem=None, **extra: Any) -> dict:
@@ -33,3 +33,16 @@ def run_attributes(command: str, scenario_text: str, title: str, *, problem=None
                      symmetries=problem.symmetries, initial_state=problem.start.label)
     attrs.update(extra)
     return attrs
+
+
+def summary_head(command: str, problem, dimension: int, ensemble_note: str) -> dict:
+    """The first keys of a spectra or thermal summary.json: what ran, on which chain, basis and state."""
+    return {
+        "command": command,
+        "title": problem.scenario.title,
+        "sites": problem.n_sites,
+        "basis": problem.basis.describe() | {"reason": problem.basis_reason},
+        "dimension": dimension,
+        "ensemble_note": ensemble_note,
+        "initial_state": problem.start.label,
+    }

@@ -41,7 +41,7 @@ from largeq.reports.progress import progress_bar
 from largeq.reports import html
 from largeq.reports import plots
 from largeq.reports.checkpoint import CHECKPOINT_NAME, Checkpointer, load_checkpoint
-from largeq.reports.run_record import run_attributes
+from largeq.reports.run_record import run_attributes, summary_head
 from largeq.reports.store import (Quantity, atomic_write_text, make_run_folder, read_summary,
                                   write_results, write_summary)
 from largeq.workflows.errors import OptionError
@@ -367,13 +367,7 @@ def _finish(problem, text, folder, options, bounds, ldos, dos, timings, forecast
     }
     write_results(folder / "results.h5", tree, attrs=attrs)
     summary = {
-        "command": "spectra",
-        "title": scenario.title,
-        "sites": problem.n_sites,
-        "basis": problem.basis.describe() | {"reason": problem.basis_reason},
-        "dimension": D,
-        "ensemble_note": note,
-        "initial_state": problem.start.label,
+        **summary_head("spectra", problem, D, note),
         "state_energy": E,
         "state_energy_from_moments": ldos.mean_moments,
         "state_width": width,

@@ -42,7 +42,7 @@ from largeq.workflows.planning import (MemoryForecast, available_bytes, check_ba
 from largeq.reports.progress import progress_bar
 from largeq.reports import html
 from largeq.reports import plots
-from largeq.reports.run_record import run_attributes
+from largeq.reports.run_record import run_attributes, summary_head
 from largeq.reports.store import (Quantity, atomic_write_text, make_run_folder, write_results,
                                   write_summary)
 from largeq.workflows.errors import OptionError, WorkflowError
@@ -350,13 +350,7 @@ def _finish(problem, text, folder, options, bounds, energy, width, canon, beta, 
     }
     write_results(folder / "results.h5", tree, attrs=attrs)
     summary = {
-        "command": "thermal",
-        "title": scenario.title,
-        "sites": problem.n_sites,
-        "basis": problem.basis.describe() | {"reason": problem.basis_reason},
-        "dimension": D,
-        "ensemble_note": note,
-        "initial_state": problem.start.label,
+        **summary_head("thermal", problem, D, note),
         "state_energy": energy,
         "state_width": width,
         "beta": beta,
