@@ -325,8 +325,8 @@ def _row_unique(i, L, full, n_up, use_t, use_r, use_f, tphase, sr, sf, reps, nrm
 
 
 @njit(inline="always", cache=True)
-def _collect_value(tab, nt, v):
-    """Insert v into the sorted ``tab[:nt]`` unless present; returns the new count, or -1 when ``tab`` is full."""
+def _lower_bound(tab, nt, v):
+    """First position in the sorted ``tab[:nt]`` whose value is not below v."""
     lo = 0
     hi = nt
     while lo < hi:
@@ -335,6 +335,13 @@ def _collect_value(tab, nt, v):
             lo = mid + 1
         else:
             hi = mid
+    return lo
+
+
+@njit(inline="always", cache=True)
+def _collect_value(tab, nt, v):
+    """Insert v into the sorted ``tab[:nt]`` unless present; returns the new count, or -1 when ``tab`` is full."""
+    lo = _lower_bound(tab, nt, v)
     if lo < nt and tab[lo] == v:
         return nt
     if nt == tab.shape[0]:
@@ -389,16 +396,7 @@ def sym_csr_fill(L, full, n_up, use_t, use_r, use_f, tphase, sr, sf, reps, nrm, 
                 if nt == 0:
                     data[e0 + q] = bvals[c, q]
                 else:
-                    v = bvals[c, q].real
-                    lo = 0
-                    hi = nt
-                    while lo < hi:
-                        mid = (lo + hi) >> 1
-                        if table[mid] < v:
-                            lo = mid + 1
-                        else:
-                            hi = mid
-                    codes[e0 + q] = lo
+                    codes[e0 + q] = _lower_bound(table, nt, bvals[c, q].real)
 
 
 # --------------------------------------------------------------------------- states
