@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import json
 import os
-import resource
 import statistics
 import sys
 import time
@@ -46,8 +45,10 @@ def copy_bandwidth(n_bytes: int = 512 * 2**20) -> float:
 
 
 def peak_rss_bytes() -> int:
-    """Peak resident memory of this process so far (Linux reports KiB)."""
-    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
+    """Peak resident memory of this process so far (its own, not a parent's: see largeq.machine)."""
+    from largeq.machine import peak_rss_bytes as own_peak
+
+    return int(own_peak())
 
 
 def print_table(headers, rows) -> None:

@@ -6,7 +6,7 @@ from __future__ import annotations
 import functools
 import time
 
-__all__ = ["available_bytes", "random_read_seconds"]
+__all__ = ["available_bytes", "peak_rss_bytes", "random_read_seconds"]
 
 
 def available_bytes() -> int:
@@ -14,6 +14,30 @@ def available_bytes() -> int:
     import psutil
 
     return int(psutil.virtual_memory().available)
+
+
+def peak_rss_bytes() -> int | None:
+    """The largest resident memory of this process so far, in bytes; None where the platform does not say.
+
+    On Linux this is VmHWM of /proc/self/status: the high-water mark of this program's own memory.  The
+    usual ``getrusage(RUSAGE_SELF).ru_maxrss`` is kept across exec, so a program started by a large parent
+    (a test runner holding gigabytes) would report the parent's peak instead of its own.
+    """
+    import sys
+
+    try:
+        with open("/proc/self/status") as f:
+            for line in f:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1]) * 1024
+    except OSError:
+        pass
+    try:
+        import resource
+    except ImportError:  # Windows
+        return None
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    return int(peak if sys.platform == "darwin" else peak * 1024)  # bytes on macOS, KiB elsewhere
 
 
 def random_read_seconds(nbytes: int, *, reads: int = 4_000_000, repeats: int = 3) -> float:

@@ -12,7 +12,6 @@ from __future__ import annotations
 
 import hashlib
 import json
-import sys
 from dataclasses import dataclass, replace
 from pathlib import Path
 
@@ -29,6 +28,7 @@ from largeq.workflows.relax_report import draw_relax_plots, known_curve_summary,
 from largeq.workflows.planning import (available_bytes, check_fits, choose_block, format_bytes, plan_run,
                                       sector_decision)
 from largeq.reports.progress import progress_bar
+from largeq.machine import peak_rss_bytes
 from largeq.reports.checkpoint import CHECKPOINT_NAME, Checkpointer, load_checkpoint
 from largeq.reports.run_record import run_attributes
 from largeq.reports.store import (Quantity, atomic_write_text, make_run_folder, write_results,
@@ -265,17 +265,6 @@ def sector_run_observables(problem: Problem, comps) -> tuple[dict, dict]:
     if problem.start.bits is None or not comps:
         return obs, {}
     return observables_for_start(obs, problem.start.bits, comps[0].sector.group)
-
-
-def _peak_rss_bytes() -> int | None:
-    """The largest resident memory this process has held so far (this process only: a resumed run's
-    earlier processes are not counted); None where the platform does not say."""
-    try:
-        import resource
-    except ImportError:  # not on Windows
-        return None
-    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
-    return int(peak if sys.platform == "darwin" else peak * 1024)  # bytes on macOS, KiB on Linux
 
 
 def _announcer(options: RelaxOptions):
@@ -592,7 +581,7 @@ def _finish(problem, text, folder, times, rec, bounds, block, forecast, stats, m
         "tolerance": scenario.numerics.tolerance,
         "block": block,
         "memory_forecast_bytes": forecast.total_bytes,
-        "peak_rss_bytes": _peak_rss_bytes(),
+        "peak_rss_bytes": peak_rss_bytes(),
         "observables": {
             n: {
                 "equilibrium": a.equilibrium,

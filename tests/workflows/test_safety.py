@@ -5,7 +5,6 @@ from __future__ import annotations
 
 import json
 import os
-import resource
 import signal
 import subprocess
 import sys
@@ -26,6 +25,31 @@ ENV = dict(os.environ, PYTHONPATH=str(ROOT), LARGEQ_PROGRESS="0")
 def largeq(*args, cwd=None, timeout=300):
     return subprocess.run([sys.executable, "-m", "largeq", *map(str, args)], capture_output=True, text=True,
                           cwd=cwd, env=ENV, timeout=timeout)
+
+
+# the command, then its own peak memory (VmHWM) as the last stderr line: getrusage(RUSAGE_CHILDREN) would
+# report the test runner's peak instead, since a process keeps its parent's ru_maxrss across exec
+_PEAK_CODE = """import sys
+from largeq.cli import main
+try:
+    rc = main(sys.argv[1:])
+except SystemExit as exc:
+    rc = exc.code
+finally:
+    from largeq.machine import peak_rss_bytes
+    print("LARGEQ_TEST_PEAK", peak_rss_bytes(), file=sys.stderr)
+sys.exit(rc)
+"""
+
+
+def largeq_peak(*args, timeout=300):
+    """Run a command like :func:`largeq`; returns (result without the peak line, the command's peak bytes)."""
+    r = subprocess.run([sys.executable, "-c", _PEAK_CODE, *map(str, args)], capture_output=True, text=True,
+                       env=ENV, timeout=timeout)
+    lines = r.stderr.splitlines()
+    assert lines and lines[-1].startswith("LARGEQ_TEST_PEAK"), r.stderr
+    r.stderr = "\n".join(lines[:-1])
+    return r, int(lines[-1].split()[1])
 
 
 def assert_one_line_error(r, *needles):
@@ -273,12 +297,11 @@ def test_forecast_of_the_wide_ring_plans_sectors_at_34_sites():
 @pytest.mark.parametrize("L", [40, 62])
 def test_describe_at_large_L_answers_quickly_in_little_memory(L):
     t0 = time.time()
-    r = largeq("describe", "neel_j1j2_sectors", "--sites", L, timeout=60)
+    r, peak = largeq_peak("describe", "neel_j1j2_sectors", "--sites", L, timeout=60)
     wall = time.time() - t0
     assert r.returncode == 0, r.stderr
     assert "does NOT fit" in r.stdout and "symmetry sectors" in r.stdout
-    peak_kib = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
-    assert peak_kib < 2 * 2**20, peak_kib  # no table or sector was built: well under 2 GiB
+    assert peak < 2 * 2**30, peak  # no table or sector was built: well under 2 GiB
     from largeq.workflows.describe import describe_scenario
 
     t0 = time.perf_counter()
@@ -288,10 +311,10 @@ def test_describe_at_large_L_answers_quickly_in_little_memory(L):
 
 
 def test_relax_refuses_large_L_before_building_anything(tmp_path):
-    r = largeq("relax", "neel_j1j2", "--sites", 62, "--out", tmp_path / "r", timeout=60)
+    r, peak = largeq_peak("relax", "neel_j1j2", "--sites", 62, "--out", tmp_path / "r", timeout=60)
     assert_one_line_error(r, "refusing to start")
     assert not (tmp_path / "r").exists()
-    assert resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss < 2 * 2**20
+    assert peak < 2 * 2**30, peak
 
 
 def test_bytes_in_scaled_units():
@@ -308,16 +331,18 @@ def test_bytes_in_scaled_units():
     ["crosscheck", "xx_neel", "--sizes", "8", "40"],
 ])
 def test_every_command_refuses_by_counting_before_building(tmp_path, args):
-    r = largeq(*args, "--out", tmp_path / "o", timeout=120)
+    r, peak = largeq_peak(*args, "--out", tmp_path / "o", timeout=120)
     assert_one_line_error(r, "refusing to start")
     assert not (tmp_path / "o").exists()
-    assert resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss < 2 * 2**20
+    assert peak < 2 * 2**30, peak
 
 
 def test_sweep_refuses_a_size_that_cannot_fit(tmp_path):
-    r = largeq("sweep", "neel_j1j2", "--sizes", 10, 12, 60, "--serial", "--out", tmp_path / "s", timeout=120)
+    r, peak = largeq_peak("sweep", "neel_j1j2", "--sizes", 10, 12, 60, "--serial", "--out", tmp_path / "s",
+                          timeout=120)
     assert r.returncode == 2 and "Traceback" not in r.stderr and "L060" in r.stderr
-    assert resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss < 2 * 2**20
+    assert peak < 2 * 2**30, peak
+    assert not (tmp_path / "s").exists()  # refused before the run folder was written
 
 
 @pytest.mark.parametrize("block", ["0", "-3"])
