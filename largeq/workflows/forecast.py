@@ -204,12 +204,17 @@ def predict_evolution(scenario: Scenario, cal: Calibration, *, block: int | None
 
 def _read_factor(cal_bytes: int, target_bytes: int) -> dict:
     """How much slower scattered reads are from the target's vector than from the calibration's (>= 1).
-    The test vector is at most 2 GiB (far beyond any cache) and a quarter of the memory free now."""
-    from largeq.machine import available_bytes as free_now, random_read_seconds
 
+    Measured only when the target's vector is larger than twice the calibration's and than half the
+    last-level cache (32 MiB where the cache size is unknown): below that it stays cached like the
+    calibration's, and the ratio would only be noise.  The test vector is at most 2 GiB (far beyond any
+    cache) and a quarter of the memory free now."""
+    from largeq.machine import available_bytes as free_now, last_level_cache_bytes, random_read_seconds
+
+    llc = last_level_cache_bytes()
     out = {"calibration_vector_bytes": int(cal_bytes), "target_vector_bytes": int(target_bytes), "factor": 1.0,
-           "measured_bytes": None}
-    if target_bytes <= 2 * cal_bytes:
+           "measured_bytes": None, "last_level_cache_bytes": llc}
+    if target_bytes <= max(2 * cal_bytes, (llc if llc else 64 << 20) // 2):
         return out
     size = int(min(target_bytes, free_now() // 4, 1 << 31))
     t_cal = random_read_seconds(cal_bytes)
