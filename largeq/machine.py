@@ -62,7 +62,8 @@ def last_level_cache_bytes() -> int | None:
 
 
 def random_read_seconds(nbytes: int, *, reads: int = 4_000_000, repeats: int = 5) -> float:
-    """Fastest of ``repeats`` timings, in seconds per random read of one complex128 entry from a vector of ``nbytes`` bytes (all cores).
+    """Seconds per random read of one complex128 entry from a vector of ``nbytes`` bytes, all cores reading
+    (the fastest of ``repeats`` timings).
 
     Products with a sparse matrix read the input vector at scattered positions; once the vector no longer
     fits in the caches each read waits for memory, several times longer than a cached one.  The ratio of this
