@@ -2,7 +2,7 @@
 
 Néel quench of the J1-J2 XXZ ring (j2 = 0.3, delta = 1), staggered magnetization on a grid
 t = 0 .. t_max with 201 output times (dt = 0.1), zero-magnetization sector.  Each method runs in
-its own subprocess so that its peak memory (ru_maxrss) is its own.  The peer is
+its own subprocess so that its peak memory (VmHWM) is its own.  The peer is
 scipy.sparse.linalg.expm_multiply applied output step by output step to the complex CSR matrix
 -iH of the same sector (its natural use; asking it for all 201 vectors at once holds them all).
 

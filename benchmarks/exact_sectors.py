@@ -2,7 +2,7 @@
 
 d_eff, <A>_inf and sigma_A^2 of the demo's four observables by dense diagonalization of the symmetry
 blocks the Neel state touches (``largeq.analysis.equilibration.exact_equilibration``, level statistics
-off).  Each size runs in its own subprocess: wall time and peak resident memory (ru_maxrss) per size.
+off).  Each size runs in its own subprocess: wall time and peak resident memory (VmHWM) per size.
 
     python benchmarks/exact_sectors.py               # L = 16, 18, 20
     python benchmarks/exact_sectors.py --with-22     # also L = 22 (tens of minutes on 2 cores)

@@ -4,7 +4,7 @@ J1-J2 Heisenberg ring (j2 = 0.3, the built-in ``neel_j1j2`` scenario), zero-magn
 Neel start: the LDOS of the Neel state and the DOS from 1024 moments and R = 4 random vectors,
 end to end through ``run_spectra`` (bounds, LDOS, DOS, files).  Dense reference:
 numpy.linalg.eigvalsh of the dense sector matrix, at the sizes where it fits in memory.
-Every measurement runs in its own subprocess so that each peak resident memory (ru_maxrss)
+Every measurement runs in its own subprocess so that each peak resident memory (VmHWM)
 is that size's alone.
 
     python benchmarks/spectral.py            # KPM at L = 20, 22, 24, 26; dense at L = 12, 14, 16

@@ -2,8 +2,8 @@
 
 The main demo's observables: staggered magnetization, sigma^z_0, the nearest-neighbour zz average and
 the bond energy of sites 0, 1 (off-diagonal: evaluated across sectors through covariant parts),
-t = 0 .. t_max (default 20, 201 times).  Each size runs in its own subprocess (peak memory from
-ru_maxrss).  Also measures the representative lookup methods (one matvec per method) and, with
+t = 0 .. t_max (default 20, 201 times).  Each size runs in its own subprocess (peak memory from its
+VmHWM).  Also measures the representative lookup methods (one matvec per method) and, with
 --per-product, the cost of one product and one observable evaluation per sector at given sizes
 (for extrapolating to sizes that are not run).
 
@@ -220,7 +220,7 @@ def main(argv=None) -> None:
                      f"{u['seconds'] / s['seconds']:.1f}" if u else "-",
                      f"{u['peak_bytes'] / s['peak_bytes']:.1f}" if u else "-", f"{diff:.1e}" if diff is not None else "-"])
     print(f"# Neel quench, t = 0 .. {args.t_max:g} ({args.n_times} times), 4 observables (bond energy included); "
-          "peak = child ru_maxrss")
+          "peak = child VmHWM (its own peak memory)")
     print_table(["L", "sector dims", "sectors_s", "sectors_GiB", "u1_s", "u1_GiB", "time ratio", "memory ratio",
                  "max|diff|"], rows)
     s28 = res.get(28, (None, None))[0]
