@@ -156,8 +156,9 @@ def predict_evolution(scenario: Scenario, cal: Calibration, *, block: int | None
     product reads (default 16 x dimension; one sector's on the sector path).  When it is larger than the
     calibration's, products, energies and observables are scaled by the measured ratio of random-read times
     from vectors of the two sizes (:func:`largeq.machine.random_read_seconds`; the test vector holds at most
-    2 GiB and a quarter of the free memory): a vector that no longer fits in the caches makes every scattered read wait for memory
-    (measured here: 3.6x per stored entry from L = 30 to L = 34 of the Néel sectors).
+    2 GiB and a quarter of the free memory): a vector that no longer fits in the caches makes every
+    scattered read wait for memory (measured here: about 4x per stored entry from L = 30 to L = 34 of the
+    Néel sectors).
     Nothing is built at the target length.
     """
     from largeq.engines.propagate import chebyshev_order
