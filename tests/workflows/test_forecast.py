@@ -94,8 +94,7 @@ def test_predicted_memory_within_20_percent(L):
 def test_scattered_reads_from_a_large_vector_scale_the_product_time():
     """A vector beyond the first- and second-level caches (256 MiB) is read more slowly at scattered positions
     than one inside them (64 KiB); the forecast scales products by that ratio only when the target's vector
-    is larger than the calibration's.  (256 MiB, not more: this process's peak memory is inherited by the
-    commands later tests start, and some of those check their own peak.)"""
+    is larger than the calibration's.  (256 MiB keeps the test runner's memory small.)"""
     from largeq.machine import random_read_seconds
     from largeq.workflows.forecast import _read_factor
 
